@@ -1,0 +1,195 @@
+package estimator
+
+import (
+	"fmt"
+	"math"
+)
+
+// MaxHorizon is the longest forecast a State gives in one call.
+const MaxHorizon = 100000
+
+// Forecast holds the forecasts for l = 1..H buckets ahead; index l-1 in
+// every slice. Interval bounds are NaN while T - p <= 0 (no residual degrees
+// of freedom yet).
+type Forecast struct {
+	Yhat       []float64 // f(l)^T theta_N
+	SE         []float64 // sigma sqrt(1 + f(l)^T F^-1 f(l))
+	Lo80, Hi80 []float64 // yhat -+ t_{0.10}(T - p) SE
+	Lo95, Hi95 []float64 // yhat -+ t_{0.025}(T - p) SE
+
+	// Cumulative forecast of the next l buckets, sum_{k<=l} yhat_k, with
+	// standard error sigma sqrt(l + c_l^T F^-1 c_l), c_l = sum_{k<=l} f(k).
+	CumYhat, CumSE      []float64
+	CumLo95, CumHi95    []float64
+	Sigma, DF, T80, T95 float64
+}
+
+// Forecast returns forecasts and intervals for l = 1..h:
+//
+//	yhat_{N+l|N} = f(l)^T theta_N
+//	yhat -+ t_{alpha/2}(T - p) sigma sqrt(1 + f(l)^T F^-1 f(l))
+//
+// the prediction interval of discounted least squares under independent
+// errors of constant variance, with sigma^2 = S / (T - p).
+func (st *State) Forecast(h int) (*Forecast, error) {
+	if h < 1 || h > MaxHorizon {
+		return nil, fmt.Errorf("estimator: horizon %d is out of range: use 1 to %d buckets", h, MaxHorizon)
+	}
+	if !st.Ready() {
+		return nil, ErrNotReady
+	}
+	p := st.p
+	buf := make([]float64, 12*h)
+	take := func() []float64 {
+		s := buf[:h:h]
+		buf = buf[h:]
+		return s
+	}
+	fc := &Forecast{
+		Yhat: take(), SE: take(), Lo80: take(), Hi80: take(), Lo95: take(), Hi95: take(),
+		CumYhat: take(), CumSE: take(), CumLo95: take(), CumHi95: take(),
+	}
+	fc.DF = st.DF()
+	fc.Sigma = st.Sigma()
+	fc.T80, fc.T95 = math.NaN(), math.NaN()
+	if fc.DF > 0 {
+		fc.T80, fc.T95 = studentQuantiles(fc.DF)
+	}
+	fl := make([]float64, p)
+	cum := make([]float64, p)
+	var cumY float64
+	for l := 1; l <= h; l++ {
+		st.spec.Regressors(float64(l), fl)
+		y := dot(fl, st.theta)
+		for i := range cum {
+			cum[i] += fl[i]
+		}
+		cumY += y
+		i := l - 1
+		fc.Yhat[i], fc.CumYhat[i] = y, cumY
+		fc.SE[i] = fc.Sigma * math.Sqrt(1+st.quadForm(fl))
+		fc.CumSE[i] = fc.Sigma * math.Sqrt(float64(l)+st.quadForm(cum))
+		fc.Lo80[i], fc.Hi80[i] = y-fc.T80*fc.SE[i], y+fc.T80*fc.SE[i]
+		fc.Lo95[i], fc.Hi95[i] = y-fc.T95*fc.SE[i], y+fc.T95*fc.SE[i]
+		fc.CumLo95[i], fc.CumHi95[i] = cumY-fc.T95*fc.CumSE[i], cumY+fc.T95*fc.CumSE[i]
+	}
+	return fc, nil
+}
+
+// Slope is the local trend at the newest bucket.
+type Slope struct {
+	// Level is the trend part at j = 0, theta_1 (seasonal terms excluded).
+	Level float64
+	// Slope is d/dj of the trend part at j = 0, theta_2, in value units per
+	// bucket; 0 for a degree-0 model.
+	Slope float64
+	// SE is the standard error sigma sqrt([F^-1]_22); NaN while T - p <= 0
+	// or for a degree-0 model.
+	SE float64
+	// DF is the residual degrees of freedom T - p.
+	DF float64
+}
+
+// T is the slope's t statistic Slope/SE; 0 when both are 0 (a constant
+// series) and NaN when SE is undefined.
+func (sl Slope) T() float64 {
+	if sl.Slope == 0 && sl.SE == 0 {
+		return 0
+	}
+	return sl.Slope / sl.SE
+}
+
+// Slope returns the level and slope of the trend at the newest bucket.
+func (st *State) Slope() (Slope, error) {
+	if !st.Ready() {
+		return Slope{}, ErrNotReady
+	}
+	sl := Slope{Level: st.theta[0], DF: st.DF(), SE: math.NaN()}
+	if st.spec.Degree == 0 {
+		return sl, nil
+	}
+	sl.Slope = st.theta[1]
+	if sigma := st.Sigma(); !math.IsNaN(sigma) {
+		// [F^-1]_22 = e_2^T F^-1 e_2.
+		e := make([]float64, st.p)
+		e[1] = 1
+		sl.SE = sigma * math.Sqrt(st.quadForm(e))
+	}
+	return sl, nil
+}
+
+// ErrorStats summarises the one-step prediction errors e = Y - yhat of the
+// observations that arrived while the state was Ready (after burn-in).
+type ErrorStats struct {
+	N     int64   // scored one-step errors
+	MAE   float64 // mean |e|; NaN when N = 0
+	RMSE  float64 // sqrt(mean e^2)
+	Bias  float64 // mean e (positive: actuals above forecasts)
+	MAPE  float64 // mean |e / Y| over actuals Y != 0, as a fraction; NaN if none
+	NAPE  int64   // errors that entered MAPE
+	NInt  int64   // errors that had an interval (T - p > 0 one step earlier)
+	In80  int64   // actuals inside the 80 % interval issued one step earlier
+	In95  int64   // same, 95 %
+	Cov80 float64 // In80 / NInt; NaN when NInt = 0
+	Cov95 float64 // In95 / NInt
+
+	// Discounted by lambda per bucket, like the fit itself:
+	// sum lambda^j |e_j| / sum lambda^j and the same for e^2.
+	DiscMAE, DiscRMSE float64
+}
+
+// Errors returns the one-step error statistics so far.
+func (st *State) Errors() ErrorStats {
+	es := st.errs
+	nan := math.NaN()
+	out := ErrorStats{N: es.n, NAPE: es.nAPE, NInt: es.nInt, In80: es.in80, In95: es.in95,
+		MAE: nan, RMSE: nan, Bias: nan, MAPE: nan, Cov80: nan, Cov95: nan, DiscMAE: nan, DiscRMSE: nan}
+	if es.n > 0 {
+		n := float64(es.n)
+		out.MAE, out.RMSE, out.Bias = es.sumAbs/n, math.Sqrt(es.sumSq/n), es.sumErr/n
+	}
+	if es.nAPE > 0 {
+		out.MAPE = es.sumAPE / float64(es.nAPE)
+	}
+	if es.nInt > 0 {
+		out.Cov80, out.Cov95 = float64(es.in80)/float64(es.nInt), float64(es.in95)/float64(es.nInt)
+	}
+	if es.dWeight > 0 {
+		out.DiscMAE, out.DiscRMSE = es.dAbs/es.dWeight, math.Sqrt(es.dSq/es.dWeight)
+	}
+	return out
+}
+
+// Fit runs a fresh state over ys, one bucket each, where NaN marks a bucket
+// without a value (a gap). Leading NaNs are skipped like any other gap.
+func Fit(spec Spec, ys []float64) (*State, error) {
+	st, err := NewState(spec)
+	if err != nil {
+		return nil, err
+	}
+	if err := st.Run(ys); err != nil {
+		return nil, err
+	}
+	return st, nil
+}
+
+// Run folds ys into the state, one bucket each; NaN marks a gap.
+func (st *State) Run(ys []float64) error {
+	gap := 0
+	for i, y := range ys {
+		if math.IsNaN(y) {
+			gap++
+			continue
+		}
+		if gap > 0 {
+			if err := st.Skip(gap); err != nil {
+				return err
+			}
+			gap = 0
+		}
+		if _, err := st.Observe(y); err != nil {
+			return fmt.Errorf("bucket %d: %w", i, err)
+		}
+	}
+	return st.Skip(gap)
+}

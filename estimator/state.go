@@ -1,0 +1,514 @@
+package estimator
+
+import (
+	"fmt"
+	"math"
+
+	"gonum.org/v1/gonum/stat/distuv"
+)
+
+// MinRCond is the smallest reciprocal condition number (1-norm) of the
+// diagonally scaled F, D^-1/2 F D^-1/2 with D = diag(F), at which a state
+// still counts as fitted. F itself is badly scaled (its raw condition number
+// is 1e7 and more for a quadratic trend); after scaling a well-spread design
+// is well conditioned, so the scaled number is the one that tells a real
+// near-singularity from bad units.
+const MinRCond = 1e-10
+
+// State is the sufficient statistics of one series under one Spec, updated
+// recursively by the exact shifted form of discounted least squares:
+//
+//	on each new bucket:  F <- lambda L^-1 F L^-T,  h <- lambda L^-1 h,
+//	                     T <- lambda T,            S <- lambda S
+//	if it has a value Y: e = Y - f(1)^T theta_old,  q = f(0)^T F_pred^-1 f(0)
+//	                     F <- F + f(0) f(0)^T,     h <- h + f(0) Y,
+//	                     T <- T + 1,               S <- S + e^2 / (1 + q)
+//	theta = F^-1 h
+//
+// F_pred is F after the shift and before the new term; q equals
+// f(1)^T F_old^-1 f(1) / lambda. A bucket without a value applies the shift
+// only. theta is in local coordinates relative to the newest bucket. The
+// update allocates nothing; queries that return slices allocate them.
+type State struct {
+	spec   Spec
+	p      int
+	lambda float64
+
+	f0, f1 []float64 // f(0), f(1)
+	linv   []float64 // L^-1, row-major p x p
+	f      []float64 // F, symmetric, full row-major p x p
+	h      []float64
+	chol   []float64 // lower Cholesky factor of F when pd
+	theta  []float64
+	tmp    []float64 // p x p scratch
+	hnew   []float64 // p scratch
+	vec    []float64 // p scratch
+
+	pd    bool    // chol and theta are valid
+	rcond float64 // reciprocal 1-norm condition number of scaled F
+
+	t   float64 // discounted count of observations, sum lambda^j
+	s   float64 // discounted residual sum of squares of the current fit
+	syy float64 // discounted sum of Y^2, only to start S when F first becomes pd
+
+	n     int64 // observations folded in
+	steps int64 // buckets advanced, observed or skipped
+
+	errs errorSums
+	tq   quantileCache
+}
+
+// errorSums accumulates one-step prediction errors e = Y - yhat, scored only
+// for observations that arrive while the state is Ready.
+type errorSums struct {
+	n       int64   // scored errors
+	sumAbs  float64 // sum |e|
+	sumSq   float64 // sum e^2
+	sumErr  float64 // sum e
+	nAPE    int64   // scored errors with Y != 0
+	sumAPE  float64 // sum |e / Y| over those
+	nInt    int64   // scored errors with an interval (T - p > 0)
+	in80    int64   // actuals inside the 80 % interval issued one step earlier
+	in95    int64   // same, 95 %
+	dAbs    float64 // discounted sum |e|
+	dSq     float64 // discounted sum e^2
+	dWeight float64 // discounted count of scored errors
+}
+
+// quantileCache keeps the Student t quantiles for the last degrees of
+// freedom seen: in steady state T stops changing and the quantiles are free.
+type quantileCache struct {
+	df       float64
+	t80, t95 float64
+}
+
+func (c *quantileCache) get(df float64) (t80, t95 float64) {
+	if df != c.df || c.t80 == 0 {
+		c.df = df
+		c.t80, c.t95 = studentQuantiles(df)
+	}
+	return c.t80, c.t95
+}
+
+// studentQuantiles returns the two-sided 80 % and 95 % critical values of
+// Student's t with df degrees of freedom (df may be fractional).
+func studentQuantiles(df float64) (t80, t95 float64) {
+	d := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: df}
+	return d.Quantile(0.9), d.Quantile(0.975)
+}
+
+// NewState returns an empty state (F = 0, h = 0) for a valid spec.
+func NewState(spec Spec) (*State, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
+	}
+	p := spec.Params()
+	buf := make([]float64, 5*p+4*p*p)
+	take := func(n int) []float64 {
+		s := buf[:n:n]
+		buf = buf[n:]
+		return s
+	}
+	st := &State{spec: spec, p: p, lambda: spec.Lambda}
+	st.f0, st.f1, st.h, st.theta, st.hnew = take(p), take(p), take(p), take(p), take(p)
+	st.linv, st.f, st.chol, st.tmp = take(p*p), take(p*p), take(p*p), take(p*p)
+	st.vec = make([]float64, p)
+	spec.Regressors(0, st.f0)
+	spec.Regressors(1, st.f1)
+	spec.Shift(-1, st.linv)
+	return st, nil
+}
+
+// Spec returns the model the state was built for.
+func (st *State) Spec() Spec { return st.spec }
+
+// Params is the number of regressors p.
+func (st *State) Params() int { return st.p }
+
+// Count is the number of observations folded in.
+func (st *State) Count() int64 { return st.n }
+
+// Steps is the number of buckets advanced, observed or skipped.
+func (st *State) Steps() int64 { return st.steps }
+
+// Weight is T = sum_j lambda^j over the observed buckets.
+func (st *State) Weight() float64 { return st.t }
+
+// RSS is S, the discounted residual sum of squares of the current fit,
+// sum_j lambda^j (Y_{N-j} - f(-j)^T theta_N)^2.
+func (st *State) RSS() float64 { return st.s }
+
+// RCond is the reciprocal 1-norm condition number of the diagonally scaled F,
+// 0 while F is singular.
+func (st *State) RCond() float64 {
+	if !st.pd {
+		return 0
+	}
+	return st.rcond
+}
+
+// Ready reports whether the state gives estimates: at least p + BurnIn
+// observations and a well-conditioned F (scaled reciprocal condition number
+// at least MinRCond).
+func (st *State) Ready() bool {
+	return st.pd && st.n >= int64(st.p+st.spec.BurnIn) && st.rcond >= MinRCond
+}
+
+// DF is the residual degrees of freedom T - p; sigma and intervals are
+// defined only when it is positive.
+func (st *State) DF() float64 { return st.t - float64(st.p) }
+
+// Sigma is the residual standard deviation sqrt(S / (T - p)), NaN while
+// T <= p.
+func (st *State) Sigma() float64 {
+	df := st.DF()
+	if df <= 0 {
+		return math.NaN()
+	}
+	return math.Sqrt(st.s / df)
+}
+
+// Step tells what one observation did: whether it was scored against the
+// forecast issued one bucket earlier and, if so, that forecast and its error.
+type Step struct {
+	Scored bool    // the state was Ready before the observation
+	Yhat   float64 // f(1)^T theta_old, the one-step forecast
+	Err    float64 // Y - Yhat
+	SE     float64 // standard error of the one-step forecast, NaN if T - p <= 0
+	Lo95   float64 // 95 % interval issued one step earlier (NaN if none)
+	Hi95   float64
+	In80   bool // Y inside the 80 % interval (false when there was none)
+	In95   bool
+}
+
+// Observe advances the state by one bucket that has the value y. NaN, Inf or
+// a value whose square overflows is an error and leaves the state unchanged.
+func (st *State) Observe(y float64) (Step, error) {
+	var step Step
+	if math.IsNaN(y) || math.IsInf(y, 0) {
+		return step, fmt.Errorf("estimator: value %v is not a finite number", y)
+	}
+	p, lam := st.p, st.lambda
+
+	// Score the one-step forecast of the old state.
+	ready := st.Ready()
+	var e, q float64
+	if st.pd {
+		step.Yhat = dot(st.f1, st.theta)
+		e = y - step.Yhat
+		q = st.quadForm(st.f1) / lam
+	}
+	if ready {
+		step.Scored, step.Err = true, e
+		step.SE, step.Lo95, step.Hi95 = math.NaN(), math.NaN(), math.NaN()
+		if df := st.DF(); df > 0 {
+			// Var(Y - yhat) = sigma^2 (1 + f(1)^T F^-1 f(1)).
+			step.SE = math.Sqrt(st.s/df) * math.Sqrt(1+lam*q)
+			t80, t95 := st.tq.get(df)
+			step.Lo95, step.Hi95 = step.Yhat-t95*step.SE, step.Yhat+t95*step.SE
+			step.In80 = math.Abs(e) <= t80*step.SE
+			step.In95 = math.Abs(e) <= t95*step.SE
+		}
+	}
+
+	// Work out everything that depends on y before touching the state, so
+	// that an overflow leaves it as it was.
+	matVec(st.linv, st.h, st.hnew, p)
+	for i := range st.hnew {
+		st.hnew[i] = lam*st.hnew[i] + st.f0[i]*y
+	}
+	syy := lam*st.syy + y*y
+	s := lam * st.s
+	if st.pd {
+		s += e * e / (1 + q)
+	}
+	if !finite(syy) || !finite(s) || !allFinite(st.hnew) || (ready && !finite(e*e)) {
+		return Step{}, fmt.Errorf("estimator: value %v is too large to fold in without overflow", y)
+	}
+
+	st.shiftF(st.linv, lam)
+	for i := 0; i < p; i++ {
+		for j := 0; j < p; j++ {
+			st.f[i*p+j] += st.f0[i] * st.f0[j]
+		}
+	}
+	copy(st.h, st.hnew)
+	st.t = lam*st.t + 1
+	st.syy = syy
+	wasPD := st.pd
+	st.refactor()
+	switch {
+	case st.pd && wasPD:
+		st.s = s
+	case st.pd:
+		// F has just become positive definite: the recursion for S needs a
+		// previous fit, so start it from its definition once.
+		st.s = math.Max(0, st.syy-dot(st.h, st.theta))
+	default:
+		st.s = 0
+	}
+	st.n++
+	st.steps++
+	if step.Scored {
+		st.errs.add(y, e, step, lam)
+	} else {
+		st.errs.decay(lam)
+	}
+	return step, nil
+}
+
+func (es *errorSums) add(y, e float64, step Step, lam float64) {
+	es.n++
+	es.sumAbs += math.Abs(e)
+	es.sumSq += e * e
+	es.sumErr += e
+	if y != 0 {
+		es.nAPE++
+		es.sumAPE += math.Abs(e / y)
+	}
+	if !math.IsNaN(step.SE) {
+		es.nInt++
+		if step.In80 {
+			es.in80++
+		}
+		if step.In95 {
+			es.in95++
+		}
+	}
+	es.dAbs = lam*es.dAbs + math.Abs(e)
+	es.dSq = lam*es.dSq + e*e
+	es.dWeight = lam*es.dWeight + 1
+}
+
+func (es *errorSums) decay(w float64) {
+	es.dAbs *= w
+	es.dSq *= w
+	es.dWeight *= w
+}
+
+// Skip advances the state by k >= 1 buckets that have no value (a gap):
+//
+//	F <- lambda^k L^-k F L^-kT,  h <- lambda^k L^-k h,  T, S <- lambda^k T, S
+//
+// after which theta_new = (L^T)^k theta_old.
+func (st *State) Skip(k int) error {
+	if k < 0 {
+		return fmt.Errorf("estimator: cannot skip %d buckets: the count must not be negative", k)
+	}
+	if k == 0 {
+		return nil
+	}
+	p := st.p
+	w := math.Pow(st.lambda, float64(k))
+	lk := st.tmpShift(k)
+	matVec(lk, st.h, st.hnew, p)
+	for i := range st.hnew {
+		st.hnew[i] *= w
+	}
+	st.shiftF(lk, w)
+	copy(st.h, st.hnew)
+	st.t *= w
+	st.s *= w
+	st.syy *= w
+	st.errs.decay(w)
+	st.steps += int64(k)
+	st.refactor()
+	if !st.pd {
+		st.s = 0
+	}
+	return nil
+}
+
+// tmpShift returns L^-k in a fresh slice (Skip is not on the hot path).
+func (st *State) tmpShift(k int) []float64 {
+	if k == 1 {
+		return st.linv
+	}
+	return st.spec.Shift(float64(-k), make([]float64, st.p*st.p))
+}
+
+// shiftF sets F <- w A F A^T.
+func (st *State) shiftF(a []float64, w float64) {
+	p := st.p
+	// tmp = A F
+	for i := 0; i < p; i++ {
+		for j := 0; j < p; j++ {
+			var sum float64
+			for k := 0; k < p; k++ {
+				sum += a[i*p+k] * st.f[k*p+j]
+			}
+			st.tmp[i*p+j] = sum
+		}
+	}
+	// F = w tmp A^T, symmetric by construction: compute the lower half and mirror.
+	for i := 0; i < p; i++ {
+		for j := 0; j <= i; j++ {
+			var sum float64
+			for k := 0; k < p; k++ {
+				sum += st.tmp[i*p+k] * a[j*p+k]
+			}
+			st.f[i*p+j] = w * sum
+			st.f[j*p+i] = w * sum
+		}
+	}
+}
+
+// refactor recomputes the Cholesky factor of F, theta = F^-1 h and the scaled
+// reciprocal condition number. It is the only place those are computed, so a
+// decoded state has bit-for-bit the same derived values as the one encoded.
+func (st *State) refactor() {
+	st.pd = cholesky(st.f, st.chol, st.p)
+	if !st.pd {
+		for i := range st.theta {
+			st.theta[i] = 0
+		}
+		st.rcond = 0
+		return
+	}
+	copy(st.theta, st.h)
+	cholSolve(st.chol, st.theta, st.p)
+	st.rcond = st.scaledRCond()
+}
+
+// quadForm returns x^T F^-1 x = ||C^-1 x||^2 with F = C C^T (F must be pd).
+func (st *State) quadForm(x []float64) float64 {
+	copy(st.vec, x)
+	forwardSubst(st.chol, st.vec, st.p)
+	return dot(st.vec, st.vec)
+}
+
+// scaledRCond computes 1 / (||A||_1 ||A^-1||_1) for A = D^-1/2 F D^-1/2 from
+// the Cholesky factor of F: A^-1 = D^1/2 F^-1 D^1/2, formed one column at a
+// time without an explicit inverse of F being kept.
+func (st *State) scaledRCond() float64 {
+	p := st.p
+	var normA, normInv float64
+	for j := 0; j < p; j++ {
+		dj := math.Sqrt(st.f[j*p+j])
+		var col float64
+		for i := 0; i < p; i++ {
+			col += math.Abs(st.f[i*p+j]) / (math.Sqrt(st.f[i*p+i]) * dj)
+		}
+		normA = math.Max(normA, col)
+		for i := range st.vec {
+			st.vec[i] = 0
+		}
+		st.vec[j] = dj
+		cholSolve(st.chol, st.vec, p)
+		col = 0
+		for i := 0; i < p; i++ {
+			col += math.Abs(st.vec[i] * math.Sqrt(st.f[i*p+i]))
+		}
+		normInv = math.Max(normInv, col)
+	}
+	r := 1 / (normA * normInv)
+	if !finite(r) {
+		return 0
+	}
+	return r
+}
+
+// Theta returns a copy of theta_N = F^-1 h, or ErrNotReady.
+func (st *State) Theta() ([]float64, error) {
+	if !st.Ready() {
+		return nil, ErrNotReady
+	}
+	return append([]float64(nil), st.theta...), nil
+}
+
+// Clone returns an independent copy of the state.
+func (st *State) Clone() *State {
+	c, err := NewState(st.spec)
+	if err != nil {
+		panic("estimator: clone of a state with an invalid spec")
+	}
+	copy(c.f, st.f)
+	copy(c.h, st.h)
+	copy(c.chol, st.chol)
+	copy(c.theta, st.theta)
+	c.pd, c.rcond = st.pd, st.rcond
+	c.t, c.s, c.syy, c.n, c.steps = st.t, st.s, st.syy, st.n, st.steps
+	c.errs, c.tq = st.errs, st.tq
+	return c
+}
+
+// cholesky factors the symmetric p x p matrix a = c c^T into the lower
+// triangle of c. It reports false when a is not numerically positive
+// definite: a pivot that is not positive or below 1e-13 of its diagonal
+// entry (the rounding left over from a singular F).
+func cholesky(a, c []float64, p int) bool {
+	for i := range c[:p*p] {
+		c[i] = 0
+	}
+	for j := 0; j < p; j++ {
+		d := a[j*p+j]
+		for k := 0; k < j; k++ {
+			d -= c[j*p+k] * c[j*p+k]
+		}
+		if !(d > 1e-13*a[j*p+j]) || !finite(d) {
+			return false
+		}
+		d = math.Sqrt(d)
+		c[j*p+j] = d
+		for i := j + 1; i < p; i++ {
+			v := a[i*p+j]
+			for k := 0; k < j; k++ {
+				v -= c[i*p+k] * c[j*p+k]
+			}
+			c[i*p+j] = v / d
+		}
+	}
+	return true
+}
+
+// forwardSubst solves c y = b in place for lower-triangular c.
+func forwardSubst(c, b []float64, p int) {
+	for i := 0; i < p; i++ {
+		v := b[i]
+		for k := 0; k < i; k++ {
+			v -= c[i*p+k] * b[k]
+		}
+		b[i] = v / c[i*p+i]
+	}
+}
+
+// cholSolve solves (c c^T) x = b in place.
+func cholSolve(c, b []float64, p int) {
+	forwardSubst(c, b, p)
+	for i := p - 1; i >= 0; i-- {
+		v := b[i]
+		for k := i + 1; k < p; k++ {
+			v -= c[k*p+i] * b[k]
+		}
+		b[i] = v / c[i*p+i]
+	}
+}
+
+func matVec(a, x, dst []float64, p int) {
+	for i := 0; i < p; i++ {
+		var sum float64
+		for k := 0; k < p; k++ {
+			sum += a[i*p+k] * x[k]
+		}
+		dst[i] = sum
+	}
+}
+
+func dot(a, b []float64) float64 {
+	var s float64
+	for i := range a {
+		s += a[i] * b[i]
+	}
+	return s
+}
+
+func finite(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+
+func allFinite(xs []float64) bool {
+	for _, x := range xs {
+		if !finite(x) {
+			return false
+		}
+	}
+	return true
+}
