@@ -29,7 +29,14 @@ func newApp() *cli.App {
 		Description: "Forecasts and intervals are estimates under model assumptions (a local polynomial\n" +
 			"trend plus optional harmonics, errors independent with constant variance). They\n" +
 			"inform decisions; the decisions stay with people.",
+		Flags: []cli.Flag{
+			&cli.BoolFlag{Name: "verbose", Usage: "log debug messages", EnvVars: []string{"SIDETREND_VERBOSE"}},
+		},
 		Commands: []*cli.Command{
+			migrateCommand(),
+			trackCommand(),
+			untrackCommand(),
+			runCommand(),
 			{
 				Name:  "version",
 				Usage: "print the version",

@@ -1,0 +1,486 @@
+-- Core tables, registration and capture.
+--
+-- sidetrend.trackers  one row per tracked (table, model)
+-- sidetrend.changes   the durable change log the capture triggers append to
+-- sidetrend.points    bucket aggregates per series (the truth replays start from)
+-- sidetrend.series    one row per series: estimator state plus forecast arrays
+-- sidetrend.rejects   source rows that could not be folded in, with the reason
+
+-- +goose Up
+CREATE TABLE sidetrend.trackers (
+    id          serial PRIMARY KEY,
+    name        text NOT NULL UNIQUE,
+    source      oid NOT NULL,
+    source_name text NOT NULL,
+    time_col    text NOT NULL,
+    time_type   text NOT NULL CHECK (time_type IN ('timestamptz', 'timestamp', 'date')),
+    value_col   text NOT NULL,
+    key_cols    text[] NOT NULL DEFAULT '{}',
+    bucket      interval NOT NULL,
+    agg         text NOT NULL CHECK (agg IN ('sum', 'mean', 'min', 'max', 'last', 'count')),
+    degree      int NOT NULL,
+    period      float8,
+    harmonics   int NOT NULL DEFAULT 0,
+    lambda      float8,
+    burn_in     int NOT NULL DEFAULT 0,
+    horizon     int NOT NULL,
+    empty       text NOT NULL CHECK (empty IN ('zero', 'gap')),
+    tz          text NOT NULL,
+    backfilled  boolean NOT NULL DEFAULT false,
+    status      text NOT NULL DEFAULT 'active' CHECK (status IN ('active', 'broken')),
+    last_error  text,
+    created_at  timestamptz NOT NULL DEFAULT now()
+);
+
+CREATE TABLE sidetrend.changes (
+    id          bigserial PRIMARY KEY,
+    tracker_id  int NOT NULL,
+    series_key  text NOT NULL,
+    bucket      bigint NOT NULL,
+    n           bigint NOT NULL,
+    sum         float8 NOT NULL,
+    min         float8,
+    max         float8,
+    last_t      timestamptz,
+    last_v      float8,
+    retract     boolean NOT NULL DEFAULT false,
+    at          timestamptz NOT NULL DEFAULT now()
+);
+
+CREATE TABLE sidetrend.points (
+    tracker_id  int NOT NULL REFERENCES sidetrend.trackers (id) ON DELETE CASCADE,
+    series_key  text NOT NULL,
+    bucket      bigint NOT NULL,
+    n           bigint NOT NULL,
+    sum         float8 NOT NULL,
+    min         float8,
+    max         float8,
+    last_t      timestamptz,
+    last_v      float8,
+    dirty       boolean NOT NULL DEFAULT false,
+    PRIMARY KEY (tracker_id, series_key, bucket)
+) WITH (fillfactor = 80);
+
+CREATE TABLE sidetrend.series (
+    tracker_id     int NOT NULL REFERENCES sidetrend.trackers (id) ON DELETE CASCADE,
+    series_key     text NOT NULL,
+    folded_through bigint,
+    first_bucket   bigint,
+    points         bigint NOT NULL DEFAULT 0,
+    state          bytea,
+    ready          boolean NOT NULL DEFAULT false,
+    rebuild        boolean NOT NULL DEFAULT false,
+    pending_due    timestamptz,
+    updated_at     timestamptz,
+    lambda         float8,
+    yhat           float8[],
+    lo80           float8[],
+    hi80           float8[],
+    lo95           float8[],
+    hi95           float8[],
+    cum_yhat       float8[],
+    cum_lo95       float8[],
+    cum_hi95       float8[],
+    level          float8,
+    slope          float8,
+    slope_se       float8,
+    sigma          float8,
+    n_errors       bigint,
+    mae            float8,
+    rmse           float8,
+    mape           float8,
+    bias           float8,
+    coverage80     float8,
+    coverage95     float8,
+    last_error     text,
+    PRIMARY KEY (tracker_id, series_key)
+) WITH (fillfactor = 50);
+
+CREATE TABLE sidetrend.rejects (
+    id          bigserial PRIMARY KEY,
+    tracker_id  int NOT NULL,
+    reason      text NOT NULL,
+    row_data    jsonb,
+    at          timestamptz NOT NULL DEFAULT now()
+);
+
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.series_key_expr(key_cols text[], rel text) RETURNS text
+LANGUAGE sql IMMUTABLE AS $$
+    SELECT CASE WHEN coalesce(cardinality(key_cols), 0) = 0 THEN $q$''$q$
+        ELSE 'concat_ws(''|'', ' || (
+            SELECT string_agg(format('coalesce(%s.%I::text, %L)', rel, c, ''), ', ' ORDER BY o)
+            FROM unnest(key_cols) WITH ORDINALITY AS u(c, o)) || ')'
+    END
+$$;
+-- +goose StatementEnd
+
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.track(
+    source     regclass,
+    time_col   text,
+    value_col  text,
+    key_cols   text[] DEFAULT '{}',
+    bucket     interval DEFAULT '1 day',
+    agg        text DEFAULT 'sum',
+    degree     int DEFAULT 1,
+    period     float8 DEFAULT NULL,
+    harmonics  int DEFAULT 0,
+    lambda     float8 DEFAULT 0.95,
+    horizon    int DEFAULT 12,
+    name       text DEFAULT NULL,
+    empty      text DEFAULT NULL,
+    tz         text DEFAULT 'UTC',
+    burn_in    int DEFAULT 0
+) RETURNS int
+LANGUAGE plpgsql AS $fn$
+DECLARE
+    v_kind     "char";
+    v_relname  text;
+    v_ttype    regtype;
+    v_vtype    regtype;
+    v_time     text;
+    v_id       int;
+    v_name     text := coalesce(track.name, (SELECT c.relname FROM pg_class c WHERE c.oid = track.source));
+    v_empty    text := coalesce(track.empty, CASE WHEN track.agg IN ('sum', 'count') THEN 'zero' ELSE 'gap' END);
+    v_cols     text;
+    v_key      text;
+    v_keyfn    text;
+    v_tstz     text;
+    v_valid    text;
+    v_reason   text;
+    v_val      text;
+    v_aggsel   text;
+    v_fn       text;
+    c          text;
+BEGIN
+    SELECT c.relkind, format('%I.%I', n.nspname, c.relname) INTO v_kind, v_relname
+    FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace WHERE c.oid = track.source;
+    IF v_kind = 'v' OR v_kind = 'm' THEN
+        RAISE EXCEPTION 'cannot track %: it is a view; track the table it reads from', v_relname
+            USING ERRCODE = 'wrong_object_type';
+    ELSIF v_kind NOT IN ('r', 'p') THEN
+        RAISE EXCEPTION 'cannot track %: only tables and partitioned tables can be tracked', v_relname
+            USING ERRCODE = 'wrong_object_type';
+    END IF;
+    SELECT string_agg(quote_ident(a.attname), ', ' ORDER BY a.attnum) INTO v_cols
+    FROM pg_attribute a WHERE a.attrelid = track.source AND a.attnum > 0 AND NOT a.attisdropped;
+
+    SELECT a.atttypid::regtype INTO v_ttype FROM pg_attribute a
+    WHERE a.attrelid = track.source AND a.attname = track.time_col AND a.attnum > 0 AND NOT a.attisdropped;
+    IF v_ttype IS NULL THEN
+        RAISE EXCEPTION 'column "%" does not exist in %', track.time_col, v_relname
+            USING ERRCODE = 'undefined_column', HINT = format('Pass time_col => one of: %s.', v_cols);
+    END IF;
+    v_time := CASE v_ttype
+        WHEN 'timestamp with time zone'::regtype THEN 'timestamptz'
+        WHEN 'timestamp without time zone'::regtype THEN 'timestamp'
+        WHEN 'date'::regtype THEN 'date' END;
+    IF v_time IS NULL THEN
+        RAISE EXCEPTION 'time column "%" of % has type %, not date, timestamp or timestamptz', track.time_col, v_relname, v_ttype
+            USING ERRCODE = 'datatype_mismatch', HINT = 'Pass a date or timestamp column as time_col, or add a generated column that casts it.';
+    END IF;
+
+    SELECT a.atttypid::regtype INTO v_vtype FROM pg_attribute a
+    WHERE a.attrelid = track.source AND a.attname = track.value_col AND a.attnum > 0 AND NOT a.attisdropped;
+    IF v_vtype IS NULL THEN
+        RAISE EXCEPTION 'column "%" does not exist in %', track.value_col, v_relname
+            USING ERRCODE = 'undefined_column', HINT = format('Pass value_col => one of: %s.', v_cols);
+    END IF;
+    IF v_vtype NOT IN ('smallint'::regtype, 'integer'::regtype, 'bigint'::regtype, 'real'::regtype,
+                       'double precision'::regtype, 'numeric'::regtype) THEN
+        RAISE EXCEPTION 'value column "%" of % has type %, which is not numeric', track.value_col, v_relname, v_vtype
+            USING ERRCODE = 'datatype_mismatch', HINT = 'Pass a smallint, integer, bigint, real, double precision or numeric column as value_col.';
+    END IF;
+
+    FOREACH c IN ARRAY coalesce(track.key_cols, '{}') LOOP
+        IF NOT EXISTS (SELECT 1 FROM pg_attribute a WHERE a.attrelid = track.source AND a.attname = c
+                       AND a.attnum > 0 AND NOT a.attisdropped) THEN
+            RAISE EXCEPTION 'key column "%" does not exist in %', c, v_relname
+                USING ERRCODE = 'undefined_column', HINT = format('Pass key_cols => columns among: %s.', v_cols);
+        END IF;
+    END LOOP;
+
+    PERFORM sidetrend.bucket_check(track.bucket);
+    IF track.agg IS NULL OR track.agg NOT IN ('sum', 'mean', 'min', 'max', 'last', 'count') THEN
+        RAISE EXCEPTION 'unknown aggregate "%"', track.agg
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use agg => sum, mean, min, max, last or count.';
+    END IF;
+    IF v_empty NOT IN ('zero', 'gap') THEN
+        RAISE EXCEPTION 'empty => "%" is not known', track.empty
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use empty => ''zero'' (no rows means 0) or ''gap'' (no rows means no information).';
+    END IF;
+    IF track.tz IS NULL OR NOT EXISTS (SELECT 1 FROM pg_timezone_names WHERE pg_timezone_names.name = track.tz) THEN
+        RAISE EXCEPTION 'time zone "%" is not known', track.tz
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use an IANA zone name such as ''UTC'' or ''Europe/Berlin'' (see pg_timezone_names).';
+    END IF;
+    IF track.degree IS NULL OR track.degree < 0 OR track.degree > 3 THEN
+        RAISE EXCEPTION 'degree % is not supported', track.degree
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a polynomial degree from 0 to 3 (1 is a local linear trend).';
+    END IF;
+    IF track.lambda IS NOT NULL AND NOT (track.lambda > 0 AND track.lambda <= 1) THEN
+        RAISE EXCEPTION 'lambda % is outside (0, 1]', track.lambda
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a forgetting factor such as 0.95 (1 means no forgetting).';
+    END IF;
+    IF track.period IS NULL AND coalesce(track.harmonics, 0) <> 0 THEN
+        RAISE EXCEPTION '% harmonics need a period', track.harmonics
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass period => the seasonal period in buckets (7 for weekly in days), or harmonics => 0.';
+    END IF;
+    IF track.period IS NOT NULL THEN
+        IF NOT (track.period >= 2) OR track.period = 'Infinity'::float8 THEN
+            RAISE EXCEPTION 'period % is too short', track.period
+                USING ERRCODE = 'invalid_parameter_value', HINT = 'A seasonal period must be at least 2 buckets.';
+        END IF;
+        IF track.harmonics IS NULL OR track.harmonics < 1 OR track.harmonics > 6 THEN
+            RAISE EXCEPTION '% harmonics are not supported with a period', track.harmonics
+                USING ERRCODE = 'invalid_parameter_value', HINT = 'Use harmonics => 1 to 6.';
+        END IF;
+        IF track.harmonics > track.period / 2 THEN
+            RAISE EXCEPTION '% harmonics are too many for period %', track.harmonics, track.period
+                USING ERRCODE = 'invalid_parameter_value', HINT = format('Use at most %s harmonics (period/2).', floor(track.period / 2));
+        END IF;
+    END IF;
+    IF track.horizon IS NULL OR track.horizon < 1 OR track.horizon > 1000 THEN
+        RAISE EXCEPTION 'horizon % is out of range', track.horizon
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a horizon of 1 to 1000 buckets (the live endpoint serves longer ones).';
+    END IF;
+    IF track.burn_in IS NULL OR track.burn_in < 0 THEN
+        RAISE EXCEPTION 'burn_in % is negative', track.burn_in
+            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use burn_in => 0 or more points.';
+    END IF;
+    IF EXISTS (SELECT 1 FROM sidetrend.trackers t WHERE t.name = v_name) THEN
+        RAISE EXCEPTION 'a tracker named "%" already exists', v_name
+            USING ERRCODE = 'duplicate_object', HINT = 'Pass name => a new name, or call sidetrend.untrack first.';
+    END IF;
+
+    INSERT INTO sidetrend.trackers (name, source, source_name, time_col, time_type, value_col, key_cols, bucket, agg,
+                                    degree, period, harmonics, lambda, burn_in, horizon, empty, tz)
+    VALUES (v_name, track.source, v_relname, track.time_col, v_time, track.value_col, coalesce(track.key_cols, '{}'),
+            track.bucket, track.agg, track.degree, track.period, coalesce(track.harmonics, 0), track.lambda,
+            track.burn_in, track.horizon, v_empty, track.tz)
+    RETURNING id INTO v_id;
+
+    PERFORM sidetrend.install_capture(v_id);
+    RETURN v_id;
+END
+$fn$;
+-- +goose StatementEnd
+
+-- install_capture (re)creates the capture function, the backfill function
+-- and the triggers of one tracker from its row in sidetrend.trackers. Every
+-- identifier goes through format('%I') or quote_ident; literals through %L.
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.install_capture(tracker_id int) RETURNS void
+LANGUAGE plpgsql SET client_min_messages = warning AS $fn$
+DECLARE
+    t        sidetrend.trackers;
+    v_vtype  regtype;
+    v_t      text;
+    v_v      text;
+    v_tstz   text;
+    v_valid  text;
+    v_reason text;
+    v_rows   text;
+    v_sel    text;
+    v_last   text;
+    v_cap    text := format('sidetrend.%I', '_capture_' || install_capture.tracker_id);
+    v_back   text := format('sidetrend.%I', '_backfill_' || install_capture.tracker_id);
+    v_trg    text := '_sidetrend_' || install_capture.tracker_id;
+    v_rel    text;
+BEGIN
+    SELECT * INTO STRICT t FROM sidetrend.trackers WHERE id = install_capture.tracker_id;
+    -- The schema-qualified name as of now (the table may have been renamed).
+    SELECT format('%I.%I', n.nspname, c.relname) INTO STRICT v_rel
+    FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace WHERE c.oid = t.source;
+    UPDATE sidetrend.trackers SET source_name = v_rel WHERE id = t.id;
+    SELECT a.atttypid::regtype INTO v_vtype FROM pg_attribute a
+    WHERE a.attrelid = t.source AND a.attname = t.value_col AND NOT a.attisdropped;
+    v_t := format('r.%I', t.time_col);
+    v_v := format('r.%I', t.value_col);
+    v_tstz := CASE t.time_type
+        WHEN 'timestamptz' THEN v_t
+        WHEN 'timestamp' THEN format('(%s AT TIME ZONE %L)', v_t, t.tz)
+        ELSE format('(%s::timestamp AT TIME ZONE %L)', v_t, t.tz) END;
+    -- A value is folded in when it is a finite float8; numeric is compared
+    -- before the cast so that a huge numeric cannot make the cast fail.
+    v_valid := format('%1$s IS NOT NULL AND isfinite(%2$s) AND %3$s IS NOT NULL AND %3$s %4$s',
+        v_t, v_t, v_v,
+        CASE WHEN v_vtype = 'numeric'::regtype THEN 'BETWEEN -1e300 AND 1e300'
+             ELSE 'BETWEEN -1e300::float8 AND 1e300::float8' END);
+    v_reason := format($r$CASE WHEN %1$s IS NULL THEN 'time is NULL'
+        WHEN NOT isfinite(%1$s) THEN 'time is infinite'
+        WHEN %2$s IS NULL THEN 'value is NULL'
+        WHEN %2$s::text = 'NaN' THEN 'value is NaN'
+        WHEN %2$s::text IN ('Infinity', '-Infinity') THEN 'value is infinite'
+        ELSE 'value is beyond +-1e300' END$r$, v_t, v_v);
+    v_last := CASE WHEN t.agg = 'last'
+        THEN format('max(%1$s) AS lt, (array_agg(%2$s::float8 ORDER BY %1$s DESC, %2$s DESC))[1] AS lv', v_tstz, v_v)
+        ELSE 'NULL::timestamptz AS lt, NULL::float8 AS lv' END;
+    -- SELECT list grouped by series and bucket: key, bucket, n, sum, min, max, last_t, last_v.
+    v_sel := format('SELECT %s AS k, sidetrend.bucket_index(%s, %L::interval, %L) AS b, count(*) AS n, '
+                    'sum(%s::float8) AS s, min(%s::float8) AS mn, max(%s::float8) AS mx, %s',
+        sidetrend.series_key_expr(t.key_cols, 'r'), v_t, t.bucket, t.tz, v_v, v_v, v_v, v_last);
+
+    EXECUTE format($f$
+CREATE OR REPLACE FUNCTION %1$s() RETURNS trigger
+LANGUAGE plpgsql SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
+BEGIN
+    IF TG_OP = 'INSERT' THEN
+        INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
+        SELECT %2$s, %5$s, to_jsonb(r) FROM new_rows r WHERE NOT coalesce(%4$s, false);
+        INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v)
+        SELECT %2$s, g.* FROM (%3$s FROM new_rows r WHERE %4$s GROUP BY 1, 2) g;
+    ELSIF TG_OP = 'DELETE' THEN
+        INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v, retract)
+        SELECT %2$s, g.k, g.b, -g.n, -g.s, g.mn, g.mx, NULL, NULL, true
+        FROM (%3$s FROM old_rows r WHERE %4$s GROUP BY 1, 2) g;
+    ELSE
+        -- An UPDATE moves each row's contribution from its old series and
+        -- bucket to its new one. Groups whose aggregates did not change (an
+        -- update of another column) write nothing.
+        INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
+        SELECT %2$s, %5$s, to_jsonb(r) FROM new_rows r WHERE NOT coalesce(%4$s, false);
+        WITH o AS (%3$s FROM old_rows r WHERE %4$s GROUP BY 1, 2),
+             nw AS (%3$s FROM new_rows r WHERE %4$s GROUP BY 1, 2)
+        INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v, retract)
+        SELECT %2$s, o.k, o.b, -o.n, -o.s, o.mn, o.mx, NULL, NULL, true FROM o
+        WHERE NOT EXISTS (SELECT 1 FROM nw WHERE (nw.k, nw.b, nw.n, nw.s, nw.mn, nw.mx, nw.lt, nw.lv)
+                          IS NOT DISTINCT FROM (o.k, o.b, o.n, o.s, o.mn, o.mx, o.lt, o.lv))
+        UNION ALL
+        SELECT %2$s, nw.k, nw.b, nw.n, nw.s, nw.mn, nw.mx, nw.lt, nw.lv, false FROM nw
+        WHERE NOT EXISTS (SELECT 1 FROM o WHERE (nw.k, nw.b, nw.n, nw.s, nw.mn, nw.mx, nw.lt, nw.lv)
+                          IS NOT DISTINCT FROM (o.k, o.b, o.n, o.s, o.mn, o.mx, o.lt, o.lv));
+    END IF;
+    PERFORM pg_notify('sidetrend', %6$L);
+    RETURN NULL;
+END
+$body$$f$, v_cap, t.id, v_sel, v_valid, v_reason, t.id::text);
+
+    EXECUTE format($f$
+CREATE OR REPLACE FUNCTION %1$s() RETURNS void
+LANGUAGE plpgsql SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
+BEGIN
+    -- SHARE mode blocks writers (not readers) while the table is read whole,
+    -- so that no row is both in the log and in the scan.
+    LOCK TABLE %2$s IN SHARE MODE;
+    DELETE FROM sidetrend.changes WHERE tracker_id = %3$s;
+    DELETE FROM sidetrend.points WHERE tracker_id = %3$s;
+    INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
+    SELECT %3$s, %6$s, to_jsonb(r) FROM %2$s r WHERE NOT coalesce(%5$s, false);
+    INSERT INTO sidetrend.points (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v)
+    SELECT %3$s, g.* FROM (%4$s FROM %2$s r WHERE %5$s GROUP BY 1, 2) g;
+    UPDATE sidetrend.series SET rebuild = true WHERE tracker_id = %3$s;
+    INSERT INTO sidetrend.series (tracker_id, series_key, rebuild)
+    SELECT DISTINCT %3$s, p.series_key, true FROM sidetrend.points p WHERE p.tracker_id = %3$s
+    ON CONFLICT ON CONSTRAINT series_pkey DO NOTHING;
+    UPDATE sidetrend.trackers SET backfilled = true WHERE id = %3$s;
+END
+$body$$f$, v_back, v_rel, t.id, v_sel, v_valid, v_reason);
+
+    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
+    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
+    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
+    EXECUTE format('CREATE TRIGGER %I AFTER INSERT ON %s REFERENCING NEW TABLE AS new_rows '
+                   'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_ins', v_rel, v_cap);
+    EXECUTE format('CREATE TRIGGER %I AFTER UPDATE ON %s REFERENCING OLD TABLE AS old_rows NEW TABLE AS new_rows '
+                   'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_upd', v_rel, v_cap);
+    EXECUTE format('CREATE TRIGGER %I AFTER DELETE ON %s REFERENCING OLD TABLE AS old_rows '
+                   'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_del', v_rel, v_cap);
+END
+$fn$;
+-- +goose StatementEnd
+
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.untrack(name text) RETURNS void
+LANGUAGE plpgsql SET client_min_messages = warning AS $fn$
+DECLARE
+    t sidetrend.trackers;
+    v_trg text;
+    v_rel text;
+BEGIN
+    SELECT * INTO t FROM sidetrend.trackers WHERE trackers.name = untrack.name;
+    IF NOT FOUND THEN
+        RAISE EXCEPTION 'no tracker named "%"', untrack.name
+            USING ERRCODE = 'undefined_object', HINT = 'See SELECT name FROM sidetrend.trackers.';
+    END IF;
+    v_trg := '_sidetrend_' || t.id;
+    SELECT format('%I.%I', n.nspname, c.relname) INTO v_rel
+    FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace WHERE c.oid = t.source;
+    IF v_rel IS NOT NULL THEN
+        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
+        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
+        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
+    END IF;
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_capture_' || t.id);
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_backfill_' || t.id);
+    DELETE FROM sidetrend.changes WHERE tracker_id = t.id;
+    DELETE FROM sidetrend.rejects WHERE tracker_id = t.id;
+    DELETE FROM sidetrend.trackers WHERE id = t.id;
+END
+$fn$;
+-- +goose StatementEnd
+
+CREATE VIEW sidetrend.forecasts AS
+SELECT t.name AS tracker,
+       s.series_key,
+       f.horizon::int AS horizon,
+       sidetrend.bucket_start(s.folded_through + f.horizon, t.bucket, t.tz) AS period_start,
+       f.yhat, f.lo80, f.hi80, f.lo95, f.hi95, f.cum_yhat, f.cum_lo95, f.cum_hi95,
+       sidetrend.bucket_start(s.folded_through, t.bucket, t.tz) AS as_of
+FROM sidetrend.series s
+JOIN sidetrend.trackers t ON t.id = s.tracker_id
+CROSS JOIN LATERAL unnest(s.yhat, s.lo80, s.hi80, s.lo95, s.hi95, s.cum_yhat, s.cum_lo95, s.cum_hi95)
+    WITH ORDINALITY AS f(yhat, lo80, hi80, lo95, hi95, cum_yhat, cum_lo95, cum_hi95, horizon)
+WHERE s.ready;
+
+CREATE VIEW sidetrend.slopes AS
+SELECT t.name AS tracker,
+       s.series_key,
+       sidetrend.bucket_start(s.folded_through, t.bucket, t.tz) AS as_of,
+       s.level,
+       s.slope,
+       s.slope_se,
+       CASE WHEN s.slope = 0 AND s.slope_se = 0 THEN 0 ELSE s.slope / nullif(s.slope_se, 0) END AS slope_t,
+       s.slope / nullif(s.level, 0) AS slope_pct,
+       CASE WHEN s.slope_se IS NULL OR s.slope_se = 0 OR abs(s.slope / s.slope_se) < 2 THEN 'flat'
+            WHEN s.slope > 0 THEN 'up' ELSE 'down' END AS direction
+FROM sidetrend.series s
+JOIN sidetrend.trackers t ON t.id = s.tracker_id
+WHERE s.ready;
+
+CREATE VIEW sidetrend.series_status AS
+SELECT t.name AS tracker,
+       s.series_key,
+       s.points,
+       sidetrend.bucket_start(s.folded_through, t.bucket, t.tz) AS last_bucket,
+       CASE WHEN s.ready THEN 'ready' ELSE 'warming' END AS state,
+       coalesce(extract(epoch FROM now() - (SELECT min(c.at) FROM sidetrend.changes c
+                 WHERE c.tracker_id = s.tracker_id AND c.series_key = s.series_key)), 0)::float8 AS lag_seconds
+FROM sidetrend.series s
+JOIN sidetrend.trackers t ON t.id = s.tracker_id;
+
+COMMENT ON TABLE sidetrend.trackers IS 'One row per tracked source table and model; created by sidetrend.track().';
+COMMENT ON TABLE sidetrend.changes IS 'Durable change log: capture triggers append per-statement bucket aggregates; the sidecar drains it.';
+COMMENT ON TABLE sidetrend.points IS 'Bucket aggregates per series: n, sum, min, max and last of the source rows in each bucket.';
+COMMENT ON TABLE sidetrend.series IS 'One row per series: estimator state and the current forecast arrays.';
+COMMENT ON TABLE sidetrend.rejects IS 'Source rows that were not folded in (NULL, NaN, infinite or out-of-range time or value), with the reason.';
+COMMENT ON FUNCTION sidetrend.track(regclass, text, text, text[], interval, text, int, float8, int, float8, int, text, text, text, int)
+    IS 'Register a tracker on a table: time column, value column, key columns, bucket width, aggregate, model and horizon. Returns the tracker id.';
+COMMENT ON FUNCTION sidetrend.untrack(text) IS 'Remove a tracker, its triggers, series and pending changes. The source table is not touched.';
+COMMENT ON VIEW sidetrend.forecasts IS 'Forecasts per series and horizon 1..H with 80 and 95 percent intervals and cumulative sums; estimates under model assumptions.';
+COMMENT ON VIEW sidetrend.slopes IS 'Local trend level and slope per series (value units per bucket); direction up/down when |slope_t| >= 2, else flat.';
+COMMENT ON VIEW sidetrend.series_status IS 'Per series: folded points, newest folded bucket, warming or ready, seconds the oldest pending change has waited.';
+
+-- +goose Down
+DROP VIEW IF EXISTS sidetrend.series_status;
+DROP VIEW IF EXISTS sidetrend.slopes;
+DROP VIEW IF EXISTS sidetrend.forecasts;
+DROP FUNCTION IF EXISTS sidetrend.untrack(text);
+DROP FUNCTION IF EXISTS sidetrend.install_capture(int);
+DROP FUNCTION IF EXISTS sidetrend.track(regclass, text, text, text[], interval, text, int, float8, int, float8, int, text, text, text, int);
+DROP FUNCTION IF EXISTS sidetrend.series_key_expr(text[], text);
+DROP TABLE IF EXISTS sidetrend.rejects;
+DROP TABLE IF EXISTS sidetrend.series;
+DROP TABLE IF EXISTS sidetrend.points;
+DROP TABLE IF EXISTS sidetrend.changes;
+DROP TABLE IF EXISTS sidetrend.trackers;

@@ -1,0 +1,636 @@
+package pgsync
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"log/slog"
+	"math"
+	"sort"
+	"strconv"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/sidetrend/sidetrend/estimator"
+)
+
+// BatchSize is how many change rows one drain transaction claims. It is
+// written into the claim statement as a literal: with LIMIT $1 a generic
+// plan may scan the whole change log.
+const BatchSize = 2000
+
+// claimSQL claims up to BatchSize change rows that no other sidecar holds,
+// deletes them, folds them into sidetrend.points and returns each touched
+// series with the oldest bucket it touched, plus one row (NULL tracker)
+// carrying the number of changes claimed. All in the caller's transaction:
+// a crash before commit leaves every claimed change in the log.
+var claimSQL = `
+WITH claimed AS (
+    DELETE FROM sidetrend.changes c
+    WHERE c.id IN (SELECT id FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(BatchSize) + ` FOR UPDATE SKIP LOCKED)
+    RETURNING c.tracker_id, c.series_key, c.bucket, c.n, c.sum, c.min, c.max, c.last_t, c.last_v, c.retract
+), agg AS (
+    SELECT tracker_id, series_key, bucket, sum(n) AS n, sum(sum) AS sum,
+           min(min) FILTER (WHERE NOT retract) AS min,
+           max(max) FILTER (WHERE NOT retract) AS max,
+           max(last_t) FILTER (WHERE NOT retract) AS last_t,
+           (array_agg(last_v ORDER BY last_t DESC, last_v DESC) FILTER (WHERE NOT retract AND last_t IS NOT NULL))[1] AS last_v,
+           bool_or(retract) AS retract
+    FROM claimed GROUP BY 1, 2, 3
+), up AS (
+    INSERT INTO sidetrend.points AS p (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v, dirty)
+    SELECT a.tracker_id, a.series_key, a.bucket, a.n, a.sum, a.min, a.max, a.last_t, a.last_v,
+           a.retract AND t.agg IN ('min', 'max', 'last')
+    FROM agg a JOIN sidetrend.trackers t ON t.id = a.tracker_id
+    ORDER BY 1, 2, 3
+    ON CONFLICT (tracker_id, series_key, bucket) DO UPDATE SET
+        n = p.n + EXCLUDED.n,
+        sum = p.sum + EXCLUDED.sum,
+        min = least(p.min, EXCLUDED.min),
+        max = greatest(p.max, EXCLUDED.max),
+        last_v = CASE WHEN p.last_t IS NULL OR EXCLUDED.last_t > p.last_t
+                        OR (EXCLUDED.last_t = p.last_t AND EXCLUDED.last_v > p.last_v)
+                      THEN coalesce(EXCLUDED.last_v, p.last_v) ELSE p.last_v END,
+        last_t = greatest(p.last_t, EXCLUDED.last_t),
+        dirty = p.dirty OR EXCLUDED.dirty
+    RETURNING p.tracker_id, p.series_key, p.bucket
+)
+SELECT u.tracker_id, u.series_key, min(u.bucket), 0::bigint FROM up u GROUP BY 1, 2
+UNION ALL
+SELECT NULL, NULL, NULL, count(*) FROM claimed`
+
+const ensureSeriesSQL = `
+INSERT INTO sidetrend.series (tracker_id, series_key)
+SELECT * FROM unnest($1::int[], $2::text[]) ORDER BY 1, 2
+ON CONFLICT (tracker_id, series_key) DO NOTHING`
+
+// lockSeriesSQL locks the series rows a batch will rewrite, in key order so
+// that two sidecars never wait on each other in a cycle.
+const lockSeriesSQL = `
+SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild
+FROM sidetrend.series s
+JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
+ORDER BY s.tracker_id, s.series_key
+FOR UPDATE OF s`
+
+// pointsSQL loads the points after a given bucket for many series at once,
+// with when each bucket ends by the tracker's calendar.
+const pointsSQL = `
+SELECT p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v,
+       sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) AS ends
+FROM unnest($1::int[], $2::text[], $3::bigint[]) AS q(tid, key, after)
+JOIN sidetrend.points p ON p.tracker_id = q.tid AND p.series_key = q.key AND p.bucket > q.after
+JOIN sidetrend.trackers t ON t.id = p.tracker_id
+ORDER BY 1, 2, 3`
+
+const updateSeriesSQL = `
+UPDATE sidetrend.series SET
+    folded_through = $3, first_bucket = $4, points = $5, state = $6, ready = $7, rebuild = false,
+    pending_due = $8, updated_at = now(), lambda = $9,
+    yhat = $10, lo80 = $11, hi80 = $12, lo95 = $13, hi95 = $14, cum_yhat = $15, cum_lo95 = $16, cum_hi95 = $17,
+    level = $18, slope = $19, slope_se = $20, sigma = $21,
+    n_errors = $22, mae = $23, rmse = $24, mape = $25, bias = $26, coverage80 = $27, coverage95 = $28,
+    last_error = $29
+WHERE tracker_id = $1 AND series_key = $2`
+
+const deleteSeriesSQL = `DELETE FROM sidetrend.series WHERE tracker_id = $1 AND series_key = $2`
+
+// dueSQL finds series with work and no new change: a bucket whose end the
+// clock has passed, or a rebuild asked for.
+const dueSQL = `
+SELECT s.tracker_id, s.series_key FROM sidetrend.series s
+WHERE s.rebuild OR s.pending_due <= now()
+ORDER BY 1, 2 LIMIT 1000`
+
+// Syncer drains the change log and keeps series states current. It holds no
+// state between batches but a cache of trackers; it is safe for one
+// goroutine at a time, and many Syncers (in many processes) may work on one
+// database at once.
+type Syncer struct {
+	pool *pgxpool.Pool
+	log  *slog.Logger
+	now  func() time.Time
+
+	trackers map[int]*Tracker
+	stats    Stats
+}
+
+// Stats counts what a Syncer has done.
+type Stats struct {
+	Changes   int64 // change rows drained
+	Batches   int64 // transactions committed
+	Series    int64 // series states written
+	Rebuilds  int64 // series replayed from their points
+	Backfills int64 // trackers backfilled from their source table
+	Retries   int64 // batches retried after a deadlock or serialization failure
+}
+
+// NewSyncer returns a Syncer on pool.
+func NewSyncer(pool *pgxpool.Pool, log *slog.Logger) *Syncer {
+	if log == nil {
+		log = slog.New(slog.DiscardHandler)
+	}
+	return &Syncer{pool: pool, log: log, now: time.Now}
+}
+
+// Stats returns the counts so far.
+func (s *Syncer) Stats() Stats { return s.stats }
+
+// CatchUp backfills new trackers, drains the whole change log, and folds
+// every bucket that is due, until nothing is left. It is what `run --once`
+// does and what `run` does on every wake-up.
+func (s *Syncer) CatchUp(ctx context.Context) error {
+	if err := s.refreshTrackers(ctx); err != nil {
+		return err
+	}
+	if err := s.backfill(ctx); err != nil {
+		return err
+	}
+	for {
+		n, err := s.retry(ctx, s.drainBatch)
+		if err != nil {
+			return err
+		}
+		if n == 0 {
+			break
+		}
+	}
+	for {
+		n, err := s.retry(ctx, s.dueBatch)
+		if err != nil {
+			return err
+		}
+		if n == 0 {
+			return nil
+		}
+	}
+}
+
+func (s *Syncer) refreshTrackers(ctx context.Context) error {
+	ts, err := LoadTrackers(ctx, s.pool)
+	if err != nil {
+		return err
+	}
+	s.trackers = ts
+	return nil
+}
+
+// backfill takes in the existing rows of every tracker not yet backfilled.
+func (s *Syncer) backfill(ctx context.Context) error {
+	ids := make([]int, 0)
+	for id, t := range s.trackers {
+		if !t.Backfilled && t.Status == "active" {
+			ids = append(ids, id)
+		}
+	}
+	sort.Ints(ids)
+	for _, id := range ids {
+		t := s.trackers[id]
+		start := time.Now()
+		fn := pgx.Identifier{"sidetrend", fmt.Sprintf("_backfill_%d", id)}.Sanitize()
+		tx, err := s.pool.Begin(ctx)
+		if err != nil {
+			return fmt.Errorf("backfill tracker %q: %w", t.Name, err)
+		}
+		// Re-check under the transaction: another sidecar may have done it.
+		var done bool
+		err = tx.QueryRow(ctx, `SELECT backfilled FROM sidetrend.trackers WHERE id = $1 FOR UPDATE`, id).Scan(&done)
+		if err == nil && !done {
+			_, err = tx.Exec(ctx, `SELECT `+fn+`()`)
+		}
+		if err == nil {
+			err = tx.Commit(ctx)
+		}
+		if err != nil {
+			tx.Rollback(context.WithoutCancel(ctx))
+			return fmt.Errorf("backfill tracker %q: %w", t.Name, err)
+		}
+		t.Backfilled = true
+		s.stats.Backfills++
+		s.log.Info("backfill done", "tracker", t.Name, "took_ms", time.Since(start).Milliseconds())
+	}
+	return nil
+}
+
+// retry runs one batch and runs it again after a deadlock or serialization
+// failure, which two sidecars working on one series can cause.
+func (s *Syncer) retry(ctx context.Context, batch func(context.Context) (int, error)) (int, error) {
+	for attempt := 0; ; attempt++ {
+		n, err := batch(ctx)
+		var pgErr *pgconn.PgError
+		if err != nil && attempt < 10 && errors.As(err, &pgErr) &&
+			(pgErr.SQLState() == "40P01" || pgErr.SQLState() == "40001") {
+			s.stats.Retries++
+			s.log.Debug("batch retried", "sqlstate", pgErr.SQLState(), "attempt", attempt+1)
+			continue
+		}
+		return n, err
+	}
+}
+
+type seriesID struct {
+	tracker int
+	key     string
+}
+
+// drainBatch claims one batch of changes and advances the series they touch,
+// in one transaction. It returns the number of changes claimed.
+func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
+	tx, err := s.pool.Begin(ctx)
+	if err != nil {
+		return 0, fmt.Errorf("begin drain: %w", err)
+	}
+	defer tx.Rollback(context.WithoutCancel(ctx))
+	rows, err := tx.Query(ctx, claimSQL)
+	if err != nil {
+		return 0, fmt.Errorf("claim changes: %w", err)
+	}
+	touched := map[seriesID]int64{}
+	var claimed int64
+	for rows.Next() {
+		var tid *int32
+		var key *string
+		var minBucket *int64
+		var n int64
+		if err := rows.Scan(&tid, &key, &minBucket, &n); err != nil {
+			rows.Close()
+			return 0, fmt.Errorf("claim changes: %w", err)
+		}
+		if tid == nil {
+			claimed = n
+			continue
+		}
+		touched[seriesID{int(*tid), *key}] = *minBucket
+	}
+	if err := rows.Err(); err != nil {
+		return 0, fmt.Errorf("claim changes: %w", err)
+	}
+	if claimed == 0 {
+		return 0, nil
+	}
+	if err := s.advance(ctx, tx, touched); err != nil {
+		return 0, err
+	}
+	if err := tx.Commit(ctx); err != nil {
+		return 0, fmt.Errorf("commit drain: %w", err)
+	}
+	s.stats.Changes += claimed
+	s.stats.Batches++
+	return int(claimed), nil
+}
+
+// dueBatch advances series that have no new change but a bucket the clock
+// has closed, or a rebuild request.
+func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
+	tx, err := s.pool.Begin(ctx)
+	if err != nil {
+		return 0, fmt.Errorf("begin due: %w", err)
+	}
+	defer tx.Rollback(context.WithoutCancel(ctx))
+	rows, err := tx.Query(ctx, dueSQL)
+	if err != nil {
+		return 0, fmt.Errorf("find due series: %w", err)
+	}
+	due := map[seriesID]int64{}
+	for rows.Next() {
+		var id seriesID
+		var tid int32
+		if err := rows.Scan(&tid, &id.key); err != nil {
+			rows.Close()
+			return 0, fmt.Errorf("find due series: %w", err)
+		}
+		id.tracker = int(tid)
+		due[id] = math.MaxInt64
+	}
+	if err := rows.Err(); err != nil {
+		return 0, fmt.Errorf("find due series: %w", err)
+	}
+	if len(due) == 0 {
+		return 0, nil
+	}
+	if err := s.refreshTrackers(ctx); err != nil {
+		return 0, err
+	}
+	if err := s.advance(ctx, tx, due); err != nil {
+		return 0, err
+	}
+	if err := tx.Commit(ctx); err != nil {
+		return 0, fmt.Errorf("commit due: %w", err)
+	}
+	s.stats.Batches++
+	return len(due), nil
+}
+
+// seriesWork is one series being advanced in a batch.
+type seriesWork struct {
+	id      seriesID
+	tracker *Tracker
+	state   *estimator.State
+	folded  int64 // newest folded bucket, valid when hasFold
+	hasFold bool
+	first   int64
+	rebuild bool
+	points  []point
+}
+
+type point struct {
+	bucket int64
+	n      int64
+	sum    float64
+	min    *float64
+	max    *float64
+	last   *float64
+	ends   time.Time
+}
+
+// advance locks the given series, loads their states and new points, folds
+// every bucket that is due, and writes the series rows. minTouched is the
+// oldest bucket a change touched (MaxInt64 when none): a change at or before
+// the newest folded bucket means the state is replayed from all points.
+func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID]int64) error {
+	ids := make([]seriesID, 0, len(minTouched))
+	for id := range minTouched {
+		if _, ok := s.trackers[id.tracker]; !ok {
+			if err := s.refreshTrackers(ctx); err != nil {
+				return err
+			}
+		}
+		if _, ok := s.trackers[id.tracker]; ok {
+			ids = append(ids, id)
+		}
+	}
+	sort.Slice(ids, func(i, j int) bool {
+		if ids[i].tracker != ids[j].tracker {
+			return ids[i].tracker < ids[j].tracker
+		}
+		return ids[i].key < ids[j].key
+	})
+	tids := make([]int32, len(ids))
+	keys := make([]string, len(ids))
+	for i, id := range ids {
+		tids[i], keys[i] = int32(id.tracker), id.key
+	}
+	if _, err := tx.Exec(ctx, ensureSeriesSQL, tids, keys); err != nil {
+		return fmt.Errorf("create series rows: %w", err)
+	}
+	rows, err := tx.Query(ctx, lockSeriesSQL, tids, keys)
+	if err != nil {
+		return fmt.Errorf("lock series: %w", err)
+	}
+	work := make(map[seriesID]*seriesWork, len(ids))
+	for rows.Next() {
+		var tid int32
+		var key string
+		var folded *int64
+		var blob []byte
+		var rebuild bool
+		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild); err != nil {
+			rows.Close()
+			return fmt.Errorf("lock series: %w", err)
+		}
+		id := seriesID{int(tid), key}
+		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild}
+		if folded != nil {
+			w.folded, w.hasFold = *folded, true
+		}
+		if w.hasFold && minTouched[id] <= w.folded {
+			w.rebuild = true
+		}
+		if !w.rebuild && w.hasFold {
+			st, err := estimator.DecodeFor(blob, w.tracker.Spec)
+			if err != nil {
+				s.log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", key, "reason", err.Error())
+				w.rebuild = true
+			} else {
+				w.state = st
+			}
+		}
+		work[id] = w
+	}
+	if err := rows.Err(); err != nil {
+		return fmt.Errorf("lock series: %w", err)
+	}
+
+	after := make([]int64, len(ids))
+	for i, id := range ids {
+		w := work[id]
+		after[i] = math.MinInt64
+		if w != nil && !w.rebuild && w.hasFold {
+			after[i] = w.folded
+		}
+	}
+	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after)
+	if err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+	for prow.Next() {
+		var tid int32
+		var key string
+		var p point
+		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
+			prow.Close()
+			return fmt.Errorf("load points: %w", err)
+		}
+		if w := work[seriesID{int(tid), key}]; w != nil {
+			w.points = append(w.points, p)
+		}
+	}
+	if err := prow.Err(); err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+
+	batch := &pgx.Batch{}
+	now := s.now()
+	for _, id := range ids {
+		w := work[id]
+		if w == nil {
+			continue
+		}
+		if w.rebuild {
+			s.stats.Rebuilds++
+		}
+		upd, err := s.fold(w, now)
+		if err != nil {
+			return err
+		}
+		if upd == nil {
+			batch.Queue(deleteSeriesSQL, int32(id.tracker), id.key)
+			continue
+		}
+		batch.Queue(updateSeriesSQL, upd...)
+		s.stats.Series++
+	}
+	if batch.Len() == 0 {
+		return nil
+	}
+	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
+		return fmt.Errorf("write series: %w", err)
+	}
+	return nil
+}
+
+// value maps a bucket aggregate to the number the estimator sees; ok is
+// false for a bucket that holds no row any more.
+func (t *Tracker) value(p point) (float64, bool) {
+	if p.n <= 0 {
+		return 0, false
+	}
+	switch t.Agg {
+	case "sum":
+		return p.sum, true
+	case "count":
+		return float64(p.n), true
+	case "mean":
+		return p.sum / float64(p.n), true
+	case "min":
+		return deref(p.min)
+	case "max":
+		return deref(p.max)
+	case "last":
+		return deref(p.last)
+	}
+	return 0, false
+}
+
+func deref(x *float64) (float64, bool) {
+	if x == nil {
+		return 0, false
+	}
+	return *x, true
+}
+
+// fold advances w's state over its due points and returns the arguments of
+// updateSeriesSQL, or nil when the series has no point left at all.
+func (s *Syncer) fold(w *seriesWork, now time.Time) ([]any, error) {
+	t := w.tracker
+	if w.rebuild || w.state == nil {
+		st, err := estimator.NewState(t.Spec)
+		if err != nil {
+			return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
+		}
+		// A replay starts from all points: they were loaded from the first
+		// bucket on, because after was MinInt64 for this series.
+		w.state, w.hasFold = st, false
+	}
+	return s.foldPoints(w, now)
+}
+
+func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
+	t := w.tracker
+	var lastErr *string
+	// Points with a value, in bucket order; the newest one is folded only
+	// once the clock has passed its end (a later bucket always closes it).
+	vals := make([]point, 0, len(w.points))
+	for _, p := range w.points {
+		if _, ok := t.value(p); ok {
+			vals = append(vals, p)
+		}
+	}
+	var pendingDue *time.Time
+	if n := len(vals); n > 0 && now.Before(vals[n-1].ends) {
+		pendingDue = &vals[n-1].ends
+		vals = vals[:n-1]
+	}
+	if !w.hasFold && len(vals) > 0 {
+		w.first = vals[0].bucket
+	}
+	for _, p := range vals {
+		y, _ := t.value(p)
+		if w.hasFold {
+			if gap := p.bucket - w.folded - 1; gap > 0 {
+				if err := s.fillGap(w, gap); err != nil {
+					return nil, err
+				}
+			}
+		}
+		if _, err := w.state.Observe(y); err != nil {
+			msg := fmt.Sprintf("bucket %d: %v", p.bucket, err)
+			lastErr = &msg
+			if err := w.state.Skip(1); err != nil {
+				return nil, err
+			}
+		}
+		w.folded, w.hasFold = p.bucket, true
+	}
+	if !w.hasFold {
+		if pendingDue == nil {
+			return nil, nil
+		}
+		// Nothing folded yet, one open bucket: keep the row so the clock
+		// sweep finds it.
+		return seriesArgs(w, nil, pendingDue, lastErr), nil
+	}
+	return seriesArgs(w, w.state, pendingDue, lastErr), nil
+}
+
+// fillGap advances over buckets without rows: zeros when the tracker says
+// empty buckets mean zero, a skip (no information) otherwise.
+func (s *Syncer) fillGap(w *seriesWork, gap int64) error {
+	if w.tracker.Empty == "zero" {
+		for i := int64(0); i < gap; i++ {
+			if _, err := w.state.Observe(0); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	for gap > 0 {
+		k := min(gap, math.MaxInt32)
+		if err := w.state.Skip(int(k)); err != nil {
+			return err
+		}
+		gap -= k
+	}
+	return nil
+}
+
+func nullable(x float64) *float64 {
+	if math.IsNaN(x) || math.IsInf(x, 0) {
+		return nil
+	}
+	return &x
+}
+
+func nullables(xs []float64) []*float64 {
+	out := make([]*float64, len(xs))
+	for i, x := range xs {
+		out[i] = nullable(x)
+	}
+	return out
+}
+
+func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastErr *string) []any {
+	t := w.tracker
+	args := make([]any, 29)
+	args[0], args[1] = int32(w.id.tracker), w.id.key
+	args[7], args[8], args[28] = pendingDue, t.Spec.Lambda, lastErr
+	if st == nil {
+		args[4], args[6] = int64(0), false
+		return args
+	}
+	blob, _ := st.MarshalBinary()
+	args[2], args[3], args[4], args[5] = w.folded, w.first, st.Count(), blob
+	ready := st.Ready()
+	args[6] = ready
+	if !ready {
+		return args
+	}
+	fc, err := st.Forecast(t.Horizon)
+	if err == nil {
+		args[9], args[10], args[11] = nullables(fc.Yhat), nullables(fc.Lo80), nullables(fc.Hi80)
+		args[12], args[13], args[14] = nullables(fc.Lo95), nullables(fc.Hi95), nullables(fc.CumYhat)
+		args[15], args[16] = nullables(fc.CumLo95), nullables(fc.CumHi95)
+		args[20] = nullable(fc.Sigma)
+	}
+	if sl, err := st.Slope(); err == nil {
+		args[17], args[18], args[19] = nullable(sl.Level), nullable(sl.Slope), nullable(sl.SE)
+	}
+	es := st.Errors()
+	args[21] = es.N
+	args[22], args[23], args[24] = nullable(es.MAE), nullable(es.RMSE), nullable(es.MAPE)
+	args[25], args[26], args[27] = nullable(es.Bias), nullable(es.Cov80), nullable(es.Cov95)
+	return args
+}
