@@ -157,11 +157,11 @@ BEGIN
     SELECT c.relkind, format('%I.%I', n.nspname, c.relname) INTO v_kind, v_relname
     FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace WHERE c.oid = track.source;
     IF v_kind = 'v' OR v_kind = 'm' THEN
-        RAISE EXCEPTION 'cannot track %: it is a view; track the table it reads from', v_relname
-            USING ERRCODE = 'wrong_object_type';
+        RAISE EXCEPTION 'cannot track %: it is a view', v_relname
+            USING ERRCODE = 'wrong_object_type', HINT = 'Track the table the view reads from; triggers on a view do not see writes to its tables.';
     ELSIF v_kind NOT IN ('r', 'p') THEN
-        RAISE EXCEPTION 'cannot track %: only tables and partitioned tables can be tracked', v_relname
-            USING ERRCODE = 'wrong_object_type';
+        RAISE EXCEPTION 'cannot track %: it is not a table', v_relname
+            USING ERRCODE = 'wrong_object_type', HINT = 'Only tables and partitioned tables can be tracked.';
     END IF;
     SELECT string_agg(quote_ident(a.attname), ', ' ORDER BY a.attnum) INTO v_cols
     FROM pg_attribute a WHERE a.attrelid = track.source AND a.attnum > 0 AND NOT a.attisdropped;

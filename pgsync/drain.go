@@ -102,7 +102,7 @@ const deleteSeriesSQL = `DELETE FROM sidetrend.series WHERE tracker_id = $1 AND 
 // clock has passed, or a rebuild asked for.
 const dueSQL = `
 SELECT s.tracker_id, s.series_key FROM sidetrend.series s
-WHERE s.rebuild OR s.pending_due <= now()
+WHERE s.rebuild OR s.pending_due <= $1
 ORDER BY 1, 2 LIMIT 1000`
 
 // Syncer drains the change log and keeps series states current. It holds no
@@ -290,7 +290,7 @@ func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("begin due: %w", err)
 	}
 	defer tx.Rollback(context.WithoutCancel(ctx))
-	rows, err := tx.Query(ctx, dueSQL)
+	rows, err := tx.Query(ctx, dueSQL, s.now())
 	if err != nil {
 		return 0, fmt.Errorf("find due series: %w", err)
 	}

@@ -147,13 +147,14 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 // the log, then wait for a notification or the poll timer, repeatedly. It
 // returns on any connection error.
 func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer) error {
-	conn, err := pool.Acquire(ctx)
+	pconn, err := pool.Acquire(ctx)
 	if err != nil {
 		return err
 	}
 	// The listening connection is not returned to the pool: it may hold
 	// notifications, and after an error its state is unknown.
-	defer conn.Hijack().Close(context.WithoutCancel(ctx))
+	conn := pconn.Hijack()
+	defer conn.Close(context.WithoutCancel(ctx))
 	if _, err := conn.Exec(ctx, "LISTEN "+pgx.Identifier{Channel}.Sanitize()); err != nil {
 		return err
 	}
@@ -166,7 +167,7 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 			r.cfg.OnCaughtUp(syncer.Stats())
 		}
 		wait, cancel := context.WithTimeout(ctx, jitter(r.cfg.Poll))
-		_, err := conn.Conn().WaitForNotification(wait)
+		_, err := conn.WaitForNotification(wait)
 		cancel()
 		if err != nil && ctx.Err() != nil {
 			return ctx.Err()
@@ -177,7 +178,7 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		// Drain whatever else arrived so one catch-up answers them all.
 		for {
 			short, cancel := context.WithTimeout(ctx, time.Millisecond)
-			_, err := conn.Conn().WaitForNotification(short)
+			_, err := conn.WaitForNotification(short)
 			cancel()
 			if err != nil {
 				if ctx.Err() != nil {

@@ -1,0 +1,521 @@
+package pgsync
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"sort"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+	"github.com/jackc/pgx/v5/pgxpool"
+	"gonum.org/v1/gonum/floats/scalar"
+
+	"github.com/sidetrend/sidetrend/estimator"
+	"github.com/sidetrend/sidetrend/internal/pgtest"
+)
+
+func TestMain(m *testing.M) { pgtest.Main(m) }
+
+// newDB returns a pool on a fresh, migrated database.
+func newDB(t *testing.T) (*pgxpool.Pool, string) {
+	t.Helper()
+	url := pgtest.NewDatabase(t)
+	ctx := context.Background()
+	if _, err := Migrate(ctx, url, nil); err != nil {
+		t.Fatal(err)
+	}
+	pool, err := Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(pool.Close)
+	return pool, url
+}
+
+func exec(t *testing.T, pool *pgxpool.Pool, sql string, args ...any) {
+	t.Helper()
+	if _, err := pool.Exec(context.Background(), sql, args...); err != nil {
+		t.Fatalf("%s: %v", sql, err)
+	}
+}
+
+// dayIndex is the bucket index of a UTC daily bucket: days since
+// 2001-01-01, the calendar's origin.
+func dayIndex(ts time.Time) int64 {
+	origin := time.Date(2001, 1, 1, 0, 0, 0, 0, time.UTC)
+	return int64(math.Floor(ts.Sub(origin).Hours() / 24))
+}
+
+// offlineFit is the reference: SELECT the source table, bucket it in Go
+// (daily, UTC, sum), fill empty buckets between observed ones with zeros,
+// and fit the estimator from scratch. It knows nothing of the change log.
+func offlineFit(t *testing.T, pool *pgxpool.Pool, table string, spec estimator.Spec) map[string]*estimator.State {
+	t.Helper()
+	rows, err := pool.Query(context.Background(),
+		fmt.Sprintf(`SELECT shop, sold_at, amount::float8 FROM %s WHERE amount IS NOT NULL AND sold_at IS NOT NULL AND amount::text <> 'NaN'`, table))
+	if err != nil {
+		t.Fatal(err)
+	}
+	sums := map[string]map[int64]float64{}
+	for rows.Next() {
+		var key string
+		var ts time.Time
+		var v float64
+		if err := rows.Scan(&key, &ts, &v); err != nil {
+			t.Fatal(err)
+		}
+		if sums[key] == nil {
+			sums[key] = map[int64]float64{}
+		}
+		sums[key][dayIndex(ts)] += v
+	}
+	if err := rows.Err(); err != nil {
+		t.Fatal(err)
+	}
+	out := map[string]*estimator.State{}
+	for key, byDay := range sums {
+		days := make([]int64, 0, len(byDay))
+		for d := range byDay {
+			days = append(days, d)
+		}
+		sort.Slice(days, func(i, j int) bool { return days[i] < days[j] })
+		ys := make([]float64, 0, days[len(days)-1]-days[0]+1)
+		for d := days[0]; d <= days[len(days)-1]; d++ {
+			ys = append(ys, byDay[d]) // a missing day is a zero sum
+		}
+		st, err := estimator.Fit(spec, ys)
+		if err != nil {
+			t.Fatal(err)
+		}
+		out[key] = st
+	}
+	return out
+}
+
+type viewRow struct {
+	key                          string
+	horizon                      int
+	yhat, lo80, hi80, lo95, hi95 *float64
+	cumYhat, cumLo95, cumHi95    *float64
+}
+
+// compareForecasts checks the forecasts view against the offline fits,
+// relative 1e-9: the sidecar's sums are folded in another order than the
+// offline sums, so the last few digits may differ (float addition is not
+// associative); 1e-9 leaves room for that and nothing else.
+func compareForecasts(t *testing.T, pool *pgxpool.Pool, tracker string, want map[string]*estimator.State, horizon int) {
+	t.Helper()
+	rows, err := pool.Query(context.Background(), `
+		SELECT series_key, horizon, yhat, lo80, hi80, lo95, hi95, cum_yhat, cum_lo95, cum_hi95
+		FROM sidetrend.forecasts WHERE tracker = $1 ORDER BY series_key, horizon`, tracker)
+	if err != nil {
+		t.Fatal(err)
+	}
+	got := map[string][]viewRow{}
+	for rows.Next() {
+		var r viewRow
+		if err := rows.Scan(&r.key, &r.horizon, &r.yhat, &r.lo80, &r.hi80, &r.lo95, &r.hi95, &r.cumYhat, &r.cumLo95, &r.cumHi95); err != nil {
+			t.Fatal(err)
+		}
+		got[r.key] = append(got[r.key], r)
+	}
+	if err := rows.Err(); err != nil {
+		t.Fatal(err)
+	}
+	const tol = 1e-9
+	for key, st := range want {
+		if !st.Ready() {
+			if len(got[key]) != 0 {
+				t.Errorf("series %q: offline fit is not ready but the view has %d rows", key, len(got[key]))
+			}
+			continue
+		}
+		fc, err := st.Forecast(horizon)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rs := got[key]
+		if len(rs) != horizon {
+			t.Fatalf("series %q: %d forecast rows, want %d", key, len(rs), horizon)
+		}
+		for i, r := range rs {
+			check := func(name string, g *float64, w float64) {
+				if math.IsNaN(w) {
+					if g != nil {
+						t.Errorf("series %q h=%d %s = %v, want NULL", key, i+1, name, *g)
+					}
+					return
+				}
+				if g == nil || !scalar.EqualWithinAbsOrRel(*g, w, 1e-9*math.Max(1, math.Abs(w)), tol) {
+					t.Errorf("series %q h=%d %s = %v, want %v", key, i+1, name, deref2(g), w)
+				}
+			}
+			check("yhat", r.yhat, fc.Yhat[i])
+			check("lo80", r.lo80, fc.Lo80[i])
+			check("hi80", r.hi80, fc.Hi80[i])
+			check("lo95", r.lo95, fc.Lo95[i])
+			check("hi95", r.hi95, fc.Hi95[i])
+			check("cum_yhat", r.cumYhat, fc.CumYhat[i])
+			check("cum_lo95", r.cumLo95, fc.CumLo95[i])
+			check("cum_hi95", r.cumHi95, fc.CumHi95[i])
+		}
+	}
+	for key := range got {
+		if _, ok := want[key]; !ok {
+			t.Errorf("view has series %q that the table does not", key)
+		}
+	}
+}
+
+func deref2(x *float64) any {
+	if x == nil {
+		return "NULL"
+	}
+	return *x
+}
+
+// salesRows makes a deterministic stream of rows: several shops, daily
+// takings with a trend, a weekly cycle and noise, several rows per day.
+func salesRows(rng *rand.Rand, shops, days, perDay int) [][]any {
+	start := time.Date(2026, 1, 5, 0, 0, 0, 0, time.UTC)
+	var out [][]any
+	for d := 0; d < days; d++ {
+		for s := 0; s < shops; s++ {
+			if rng.IntN(20) == 0 {
+				continue // a day without any sale: an empty bucket, zero by the sum policy
+			}
+			for k := 0; k < perDay; k++ {
+				ts := start.Add(time.Duration(d)*24*time.Hour + time.Duration(rng.IntN(86400))*time.Second)
+				v := 50 + 0.3*float64(d) + 8*math.Sin(2*math.Pi*float64(d)/7) + 3*rng.NormFloat64() + float64(s)
+				out = append(out, []any{ts, fmt.Sprintf("shop %d", s), math.Round(v*100) / 100})
+			}
+		}
+	}
+	return out
+}
+
+func insertRows(t *testing.T, pool *pgxpool.Pool, table string, rows [][]any) {
+	t.Helper()
+	if len(rows) == 0 {
+		return
+	}
+	var sb strings.Builder
+	args := make([]any, 0, 3*len(rows))
+	fmt.Fprintf(&sb, "INSERT INTO %s (sold_at, shop, amount) VALUES ", table)
+	for i, r := range rows {
+		if i > 0 {
+			sb.WriteString(", ")
+		}
+		fmt.Fprintf(&sb, "($%d, $%d, $%d)", 3*i+1, 3*i+2, 3*i+3)
+		args = append(args, r...)
+	}
+	exec(t, pool, sb.String(), args...)
+}
+
+var salesSpec = estimator.Spec{Degree: 1, Period: 7, Harmonics: 2, Lambda: 0.95}
+
+func createSales(t *testing.T, pool *pgxpool.Pool, name string) {
+	t.Helper()
+	exec(t, pool, fmt.Sprintf(`CREATE TABLE %s (id bigserial PRIMARY KEY, sold_at timestamptz, shop text, amount numeric)`, name))
+	exec(t, pool, `SELECT sidetrend.track($1::regclass, 'sold_at', 'amount', '{shop}', period => 7, harmonics => 2, horizon => 14)`, name)
+}
+
+// TestPipelineMatchesOffline inserts rows in many statements of random size
+// in random order, with catch-ups at random moments, and checks that the
+// forecasts equal a from-scratch fit on SELECT of the table.
+func TestPipelineMatchesOffline(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	rng := rand.New(rand.NewPCG(1, 1))
+	createSales(t, pool, "sales")
+	// Rows before the first catch-up are taken in by the backfill.
+	all := salesRows(rng, 4, 90, 3)
+	insertRows(t, pool, "sales", all[:100])
+	rest := all[100:]
+	// Shuffle within windows of about a day's rows: rows of a still pending
+	// bucket arrive in any order.
+	for i := 0; i < len(rest); i += 12 {
+		w := rest[i:min(i+12, len(rest))]
+		rng.Shuffle(len(w), func(a, b int) { w[a], w[b] = w[b], w[a] })
+	}
+	s := NewSyncer(pool, nil)
+	for len(rest) > 0 {
+		n := min(1+rng.IntN(40), len(rest))
+		insertRows(t, pool, "sales", rest[:n])
+		rest = rest[n:]
+		if rng.IntN(4) == 0 {
+			if err := s.CatchUp(ctx); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", salesSpec), 14)
+	st := s.Stats()
+	if st.Backfills != 1 || st.Changes == 0 {
+		t.Errorf("stats %+v: want one backfill and some changes", st)
+	}
+	var left int
+	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&left); err != nil || left != 0 {
+		t.Errorf("change log has %d rows after catch-up (err %v)", left, err)
+	}
+}
+
+// TestOpenBucketWaitsForClock checks the folding rule: the newest bucket is
+// folded once a later bucket has data or the clock has passed its end.
+func TestOpenBucketWaitsForClock(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	day := func(d int) time.Time { return time.Date(2026, 3, 1+d, 12, 0, 0, 0, time.UTC) }
+	for d := 0; d < 3; d++ {
+		insertRows(t, pool, "sales", [][]any{{day(d), "a", 10.0 + float64(d)}})
+	}
+	s := NewSyncer(pool, nil)
+	s.now = func() time.Time { return day(2) } // the clock is inside the third day
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	var points int64
+	var due *time.Time
+	if err := pool.QueryRow(ctx, `SELECT points, pending_due FROM sidetrend.series WHERE series_key = 'a'`).Scan(&points, &due); err != nil {
+		t.Fatal(err)
+	}
+	if points != 2 || due == nil || !due.Equal(time.Date(2026, 3, 4, 0, 0, 0, 0, time.UTC)) {
+		t.Fatalf("with the third day open: points %d, pending_due %v; want 2 and 2026-03-04", points, due)
+	}
+	// The clock passes midnight: the due sweep folds the third day.
+	s.now = func() time.Time { return day(3) }
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if err := pool.QueryRow(ctx, `SELECT points, pending_due FROM sidetrend.series WHERE series_key = 'a'`).Scan(&points, &due); err != nil {
+		t.Fatal(err)
+	}
+	if points != 3 || due != nil {
+		t.Fatalf("after the clock passed: points %d, pending_due %v; want 3 and NULL", points, due)
+	}
+}
+
+// TestRestartLosesNothing stops the sidecar between batches and checks that
+// what was written while it was down is taken in on restart.
+func TestRestartLosesNothing(t *testing.T) {
+	t.Parallel()
+	pool, url := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	rng := rand.New(rand.NewPCG(2, 2))
+	rows := salesRows(rng, 3, 60, 2)
+	third := len(rows) / 3
+	start := func() (*Runner, chan Stats) {
+		caught := make(chan Stats, 100)
+		r := NewRunner(url, RunnerConfig{Poll: time.Hour, OnCaughtUp: func(s Stats) {
+			select {
+			case caught <- s:
+			default:
+			}
+		}}, nil)
+		if err := r.Start(ctx); err != nil {
+			t.Fatal(err)
+		}
+		return r, caught
+	}
+	waitEmpty := func(caught chan Stats) {
+		deadline := time.After(30 * time.Second)
+		for {
+			select {
+			case <-caught:
+				var n int
+				if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&n); err != nil {
+					t.Fatal(err)
+				}
+				if n == 0 {
+					return
+				}
+			case <-deadline:
+				t.Fatal("sidecar did not catch up within 30 s")
+			}
+		}
+	}
+	r, caught := start()
+	for i := 0; i < third; i += 10 {
+		insertRows(t, pool, "sales", rows[i:min(i+10, third)])
+	}
+	waitEmpty(caught)
+	r.Stop()
+	r.Stop() // idempotent
+	// Written while the sidecar is down: only the change log has it.
+	for i := third; i < 2*third; i += 10 {
+		insertRows(t, pool, "sales", rows[i:min(i+10, 2*third)])
+	}
+	r, caught = start()
+	waitEmpty(caught)
+	for i := 2 * third; i < len(rows); i += 10 {
+		insertRows(t, pool, "sales", rows[i:min(i+10, len(rows))])
+	}
+	waitEmpty(caught)
+	r.Stop()
+	compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", salesSpec), 14)
+}
+
+// TestTwoSidecarsApplyOnce runs two syncers at the same time on one change
+// log while rows arrive: a change applied twice would double a bucket sum
+// and break the comparison with the offline fit.
+func TestTwoSidecarsApplyOnce(t *testing.T) {
+	t.Parallel()
+	pool, url := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	rng := rand.New(rand.NewPCG(3, 3))
+	rows := salesRows(rng, 5, 60, 3)
+	stop := make(chan struct{})
+	var wg sync.WaitGroup
+	var syncers []*Syncer
+	var mu sync.Mutex
+	var firstErr error
+	for i := 0; i < 2; i++ {
+		p2, err := Connect(ctx, url)
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer p2.Close()
+		s := NewSyncer(p2, nil)
+		syncers = append(syncers, s)
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for {
+				select {
+				case <-stop:
+					return
+				default:
+				}
+				if err := s.CatchUp(ctx); err != nil {
+					mu.Lock()
+					if firstErr == nil {
+						firstErr = err
+					}
+					mu.Unlock()
+					return
+				}
+			}
+		}()
+	}
+	for i := 0; i < len(rows); i += 7 {
+		insertRows(t, pool, "sales", rows[i:min(i+7, len(rows))])
+	}
+	close(stop)
+	wg.Wait()
+	if firstErr != nil {
+		t.Fatal(firstErr)
+	}
+	if err := syncers[0].CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", salesSpec), 14)
+	a, b := syncers[0].Stats(), syncers[1].Stats()
+	t.Logf("changes drained: %d and %d; retries %d and %d", a.Changes, b.Changes, a.Retries, b.Retries)
+}
+
+// TestRejectsKeepGoodRows puts bad rows next to good ones in one statement.
+func TestRejectsKeepGoodRows(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	s := NewSyncer(pool, nil)
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	exec(t, pool, `INSERT INTO sales (sold_at, shop, amount) VALUES
+		('2026-01-01 10:00Z', 'a', 10), ('2026-01-01 11:00Z', 'a', NULL), (NULL, 'a', 3),
+		('2026-01-02 10:00Z', 'a', 'NaN'), ('infinity', 'a', 4), ('2026-01-02 10:00Z', 'a', 12)`)
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	rows, err := pool.Query(ctx, `SELECT reason FROM sidetrend.rejects ORDER BY id`)
+	if err != nil {
+		t.Fatal(err)
+	}
+	reasons, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []string{"value is NULL", "time is NULL", "value is NaN", "time is infinite"}
+	if strings.Join(reasons, ",") != strings.Join(want, ",") {
+		t.Errorf("rejects %q, want %q", reasons, want)
+	}
+	var n, sum float64
+	if err := pool.QueryRow(ctx, `SELECT sum(n), sum(sum) FROM sidetrend.points`).Scan(&n, &sum); err != nil {
+		t.Fatal(err)
+	}
+	if n != 2 || sum != 22 {
+		t.Errorf("points hold n=%v sum=%v, want the two good rows: 2 and 22", n, sum)
+	}
+}
+
+// TestTrackErrors checks that every bad registration is refused with an
+// error that names what to change, and leaves no tracker behind.
+func TestTrackErrors(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE m (at timestamptz, d date, label text, v float8, n numeric, "Odd Name" int)`)
+	exec(t, pool, `CREATE VIEW mv AS SELECT * FROM m`)
+	cases := []struct {
+		sql, state, want string
+	}{
+		{`SELECT sidetrend.track('nosuch', 'at', 'v')`, "42P01", `relation "nosuch" does not exist`},
+		{`SELECT sidetrend.track('m', 'when', 'v')`, "42703", `column "when" does not exist`},
+		{`SELECT sidetrend.track('m', 'at', 'label')`, "42804", `not numeric`},
+		{`SELECT sidetrend.track('m', 'label', 'v')`, "42804", `not date, timestamp or timestamptz`},
+		{`SELECT sidetrend.track('m', 'at', 'v', agg => 'median')`, "22023", `unknown aggregate`},
+		{`SELECT sidetrend.track('m', 'at', 'v', lambda => 1.3)`, "22023", `outside (0, 1]`},
+		{`SELECT sidetrend.track('m', 'at', 'v', degree => 5)`, "22023", `degree 5`},
+		{`SELECT sidetrend.track('m', 'at', 'v', period => 4, harmonics => 3)`, "22023", `too many`},
+		{`SELECT sidetrend.track('m', 'at', 'v', period => 1, harmonics => 1)`, "22023", `too short`},
+		{`SELECT sidetrend.track('m', 'at', 'v', harmonics => 2)`, "22023", `need a period`},
+		{`SELECT sidetrend.track('m', 'at', 'v', tz => 'Mars/Olympus')`, "22023", `time zone`},
+		{`SELECT sidetrend.track('m', 'at', 'v', empty => 'carry')`, "22023", `empty`},
+		{`SELECT sidetrend.track('m', 'at', 'v', key_cols => '{nokey}')`, "42703", `key column "nokey"`},
+		{`SELECT sidetrend.track('m', 'at', 'v', bucket => '-1 day')`, "22023", ``},
+		{`SELECT sidetrend.track('m', 'at', 'v', bucket => '1 day 2 hours')`, "22023", ``},
+		{`SELECT sidetrend.track('mv', 'at', 'v')`, "42809", `is a view`},
+	}
+	for _, c := range cases {
+		_, err := pool.Exec(ctx, c.sql)
+		var pgErr *pgconn.PgError
+		if !errors.As(err, &pgErr) {
+			t.Errorf("%s: err %v, want SQLSTATE %s", c.sql, err, c.state)
+			continue
+		}
+		if pgErr.SQLState() != c.state || !strings.Contains(pgErr.Message, c.want) {
+			t.Errorf("%s: %s %q, want %s containing %q", c.sql, pgErr.SQLState(), pgErr.Message, c.state, c.want)
+		}
+		if pgErr.Hint == "" && pgErr.SQLState() != "42P01" {
+			t.Errorf("%s: no hint saying what to change", c.sql)
+		}
+	}
+	// A good one, then the same name again, then names that need quoting.
+	exec(t, pool, `SELECT sidetrend.track('m', 'at', 'v')`)
+	_, err := pool.Exec(ctx, `SELECT sidetrend.track('m', 'd', 'n')`)
+	if err == nil || !strings.Contains(err.Error(), "already exists") {
+		t.Errorf("duplicate name: %v", err)
+	}
+	exec(t, pool, `SELECT sidetrend.track('m', 'd', 'Odd Name', name => 'odd one')`)
+	var n int
+	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.trackers`).Scan(&n); err != nil || n != 2 {
+		t.Errorf("%d trackers (err %v), want 2", n, err)
+	}
+}
