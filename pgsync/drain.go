@@ -70,7 +70,7 @@ ON CONFLICT (tracker_id, series_key) DO NOTHING`
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
 // that two sidecars never wait on each other in a cycle.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild
+SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -116,6 +116,28 @@ type Syncer struct {
 
 	trackers map[int]*Tracker
 	stats    Stats
+
+	// OnBatch, if set, is called after every committed batch.
+	OnBatch func(BatchInfo)
+	// Progress, if set, is told about long work: backfills and replays.
+	Progress Progress
+}
+
+// BatchInfo describes one committed batch.
+type BatchInfo struct {
+	Kind     string // "drain" (change log) or "due" (clock or rebuild request)
+	Changes  int    // change rows claimed
+	Series   int    // series rows written
+	Rebuilds int    // series replayed from their points
+	Took     time.Duration
+}
+
+// Progress receives progress of long work. Start may be called with total
+// -1 when the amount is not known.
+type Progress interface {
+	Start(label string, total int64)
+	Add(n int64)
+	Done()
 }
 
 // Stats counts what a Syncer has done.
@@ -158,6 +180,16 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 			break
 		}
 	}
+	if s.Progress != nil {
+		var pending int64
+		if err := s.pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.series WHERE rebuild`).Scan(&pending); err != nil {
+			return fmt.Errorf("count replays: %w", err)
+		}
+		if pending > 0 {
+			s.Progress.Start("replaying series", pending)
+			defer s.Progress.Done()
+		}
+	}
 	for {
 		n, err := s.retry(ctx, s.dueBatch)
 		if err != nil {
@@ -187,6 +219,10 @@ func (s *Syncer) backfill(ctx context.Context) error {
 		}
 	}
 	sort.Ints(ids)
+	if s.Progress != nil && len(ids) > 0 {
+		s.Progress.Start("backfilling trackers", int64(len(ids)))
+		defer s.Progress.Done()
+	}
 	for _, id := range ids {
 		t := s.trackers[id]
 		start := time.Now()
@@ -210,6 +246,9 @@ func (s *Syncer) backfill(ctx context.Context) error {
 		}
 		t.Backfilled = true
 		s.stats.Backfills++
+		if s.Progress != nil {
+			s.Progress.Add(1)
+		}
 		s.log.Info("backfill done", "tracker", t.Name, "took_ms", time.Since(start).Milliseconds())
 	}
 	return nil
@@ -239,6 +278,7 @@ type seriesID struct {
 // drainBatch claims one batch of changes and advances the series they touch,
 // in one transaction. It returns the number of changes claimed.
 func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
+	began, before := time.Now(), s.stats
 	tx, err := s.pool.Begin(ctx)
 	if err != nil {
 		return 0, fmt.Errorf("begin drain: %w", err)
@@ -279,12 +319,14 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 	}
 	s.stats.Changes += claimed
 	s.stats.Batches++
+	s.batchDone("drain", before, began)
 	return int(claimed), nil
 }
 
 // dueBatch advances series that have no new change but a bucket the clock
 // has closed, or a rebuild request.
 func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
+	began, before := time.Now(), s.stats
 	tx, err := s.pool.Begin(ctx)
 	if err != nil {
 		return 0, fmt.Errorf("begin due: %w", err)
@@ -321,13 +363,28 @@ func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("commit due: %w", err)
 	}
 	s.stats.Batches++
+	s.batchDone("due", before, began)
+	if s.Progress != nil {
+		s.Progress.Add(int64(len(due)))
+	}
 	return len(due), nil
+}
+
+func (s *Syncer) batchDone(kind string, before Stats, began time.Time) {
+	if s.OnBatch == nil {
+		return
+	}
+	s.OnBatch(BatchInfo{Kind: kind, Changes: int(s.stats.Changes - before.Changes),
+		Series: int(s.stats.Series - before.Series), Rebuilds: int(s.stats.Rebuilds - before.Rebuilds),
+		Took: time.Since(began)})
 }
 
 // seriesWork is one series being advanced in a batch.
 type seriesWork struct {
 	id      seriesID
 	tracker *Tracker
+	spec    estimator.Spec // the tracker's model, with the series' own lambda if tuned
+	lambda  *float64       // the series' own lambda, nil for the tracker's
 	state   *estimator.State
 	folded  int64 // newest folded bucket, valid when hasFold
 	hasFold bool
@@ -387,12 +444,17 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		var folded *int64
 		var blob []byte
 		var rebuild bool
-		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild); err != nil {
+		var lambda *float64
+		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
 		id := seriesID{int(tid), key}
-		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild}
+		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda}
+		w.spec = w.tracker.Spec
+		if lambda != nil {
+			w.spec.Lambda = *lambda // tuned for this series
+		}
 		if folded != nil {
 			w.folded, w.hasFold = *folded, true
 		}
@@ -400,7 +462,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			w.rebuild = true
 		}
 		if !w.rebuild && w.hasFold {
-			st, err := estimator.DecodeFor(blob, w.tracker.Spec)
+			st, err := estimator.DecodeFor(blob, w.spec)
 			if err != nil {
 				s.log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", key, "reason", err.Error())
 				w.rebuild = true
@@ -507,7 +569,7 @@ func deref(x *float64) (float64, bool) {
 func (s *Syncer) fold(w *seriesWork, now time.Time) ([]any, error) {
 	t := w.tracker
 	if w.rebuild || w.state == nil {
-		st, err := estimator.NewState(t.Spec)
+		st, err := estimator.NewState(w.spec)
 		if err != nil {
 			return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
 		}
@@ -606,7 +668,7 @@ func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastE
 	t := w.tracker
 	args := make([]any, 29)
 	args[0], args[1] = int32(w.id.tracker), w.id.key
-	args[7], args[8], args[28] = pendingDue, t.Spec.Lambda, lastErr
+	args[7], args[8], args[28] = pendingDue, w.lambda, lastErr
 	if st == nil {
 		args[4], args[6] = int64(0), false
 		return args

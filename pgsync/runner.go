@@ -53,6 +53,12 @@ type RunnerConfig struct {
 	// OnCaughtUp, if set, is called after every catch-up that found the log
 	// empty: tests wait on it instead of sleeping.
 	OnCaughtUp func(Stats)
+	// OnBatch and Progress are handed to the Syncer (metrics, progress bars).
+	OnBatch  func(BatchInfo)
+	Progress Progress
+	// OnSessionError, if set, is told why a session ended (before the
+	// reconnect backoff): metrics and health checks use it.
+	OnSessionError func(error)
 }
 
 // Runner is the long-lived sidecar: it LISTENs, catches up from the change
@@ -127,6 +133,7 @@ func (r *Runner) Done() <-chan struct{} {
 
 func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 	syncer := NewSyncer(pool, r.log)
+	syncer.OnBatch, syncer.Progress = r.cfg.OnBatch, r.cfg.Progress
 	backoff := 100 * time.Millisecond
 	for ctx.Err() == nil {
 		err := r.session(ctx, pool, syncer)
@@ -134,6 +141,9 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 			return
 		}
 		r.log.Warn("sidecar session ended, reconnecting", "err", err, "backoff_ms", backoff.Milliseconds())
+		if r.cfg.OnSessionError != nil {
+			r.cfg.OnSessionError(err)
+		}
 		select {
 		case <-ctx.Done():
 			return

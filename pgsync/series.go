@@ -1,0 +1,109 @@
+package pgsync
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/sidetrend/sidetrend/estimator"
+)
+
+// ErrNoSeries is returned when a tracker or series does not exist.
+var ErrNoSeries = errors.New("pgsync: no such series")
+
+// SeriesData is one series as the estimator sees it: the bucket values from
+// the first observed bucket to the newest folded one, after the tracker's
+// empty-bucket policy (zero, or NaN for a gap), plus its stored state.
+type SeriesData struct {
+	Tracker    *Tracker
+	Key        string
+	Spec       estimator.Spec // the tracker's model with the series' own lambda if it has one
+	FirstIndex int64          // bucket index of Values[0]
+	LastIndex  int64          // bucket index of the newest folded bucket
+	Values     []float64
+	Starts     []time.Time // start of each bucket in Values
+	State      []byte      // stored estimator state, nil while nothing is folded
+	Ready      bool
+}
+
+const seriesRowSQL = `
+SELECT s.folded_through, s.first_bucket, s.state, s.ready, s.lambda
+FROM sidetrend.series s JOIN sidetrend.trackers t ON t.id = s.tracker_id
+WHERE t.name = $1 AND s.series_key = $2`
+
+const seriesPointsSQL = `
+SELECT g.i, sidetrend.bucket_start(g.i, t.bucket, t.tz), p.n, p.sum, p.min, p.max, p.last_v
+FROM sidetrend.trackers t
+CROSS JOIN generate_series($2::bigint, $3::bigint) AS g(i)
+LEFT JOIN sidetrend.points p ON p.tracker_id = t.id AND p.series_key = $4 AND p.bucket = g.i
+WHERE t.name = $1
+ORDER BY g.i`
+
+// LoadSeries reads one series' values and stored state.
+func LoadSeries(ctx context.Context, q querier, tracker, key string) (*SeriesData, error) {
+	ts, err := LoadTrackers(ctx, q)
+	if err != nil {
+		return nil, err
+	}
+	var t *Tracker
+	for _, x := range ts {
+		if x.Name == tracker {
+			t = x
+		}
+	}
+	if t == nil {
+		return nil, fmt.Errorf("tracker %q: %w", tracker, ErrNoSeries)
+	}
+	d := &SeriesData{Tracker: t, Key: key, Spec: t.Spec}
+	var folded, first *int64
+	var lambda *float64
+	err = q.QueryRow(ctx, seriesRowSQL, tracker, key).Scan(&folded, &first, &d.State, &d.Ready, &lambda)
+	if errors.Is(err, pgx.ErrNoRows) {
+		return nil, fmt.Errorf("tracker %q series %q: %w", tracker, key, ErrNoSeries)
+	}
+	if err != nil {
+		return nil, fmt.Errorf("load series %q/%q: %w", tracker, key, err)
+	}
+	if lambda != nil {
+		d.Spec.Lambda = *lambda
+	}
+	if folded == nil || first == nil {
+		return d, nil
+	}
+	d.FirstIndex, d.LastIndex = *first, *folded
+	rows, err := q.Query(ctx, seriesPointsSQL, tracker, *first, *folded, key)
+	if err != nil {
+		return nil, fmt.Errorf("load points of %q/%q: %w", tracker, key, err)
+	}
+	defer rows.Close()
+	for rows.Next() {
+		var p point
+		var start time.Time
+		var n *int64
+		var sum *float64
+		if err := rows.Scan(&p.bucket, &start, &n, &sum, &p.min, &p.max, &p.last); err != nil {
+			return nil, fmt.Errorf("load points of %q/%q: %w", tracker, key, err)
+		}
+		if n != nil {
+			p.n = *n
+		}
+		if sum != nil {
+			p.sum = *sum
+		}
+		y, ok := t.value(p)
+		switch {
+		case ok:
+		case t.Empty == "zero":
+			y = 0
+		default:
+			y = math.NaN()
+		}
+		d.Values = append(d.Values, y)
+		d.Starts = append(d.Starts, start)
+	}
+	return d, rows.Err()
+}
