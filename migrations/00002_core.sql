@@ -286,7 +286,13 @@ DECLARE
     v_cap    text := format('sidetrend.%I', '_capture_' || install_capture.tracker_id);
     v_back   text := format('sidetrend.%I', '_backfill_' || install_capture.tracker_id);
     v_trg    text := '_sidetrend_' || install_capture.tracker_id;
+    v_rec    text := format('sidetrend.%I', '_recompute_' || install_capture.tracker_id);
+    v_trunc  text := format('sidetrend.%I', '_truncate_' || install_capture.tracker_id);
     v_rel    text;
+    v_lo     text;
+    v_hi     text;
+    v_key    text;
+    v_range  text;
 BEGIN
     SELECT * INTO STRICT t FROM sidetrend.trackers WHERE id = install_capture.tracker_id;
     -- The schema-qualified name as of now (the table may have been renamed).
@@ -303,16 +309,34 @@ BEGIN
         ELSE format('(%s::timestamp AT TIME ZONE %L)', v_t, t.tz) END;
     -- A value is folded in when it is a finite float8; numeric is compared
     -- before the cast so that a huge numeric cannot make the cast fail.
-    v_valid := format('%1$s IS NOT NULL AND isfinite(%2$s) AND %3$s IS NOT NULL AND %3$s %4$s',
-        v_t, v_t, v_v,
-        CASE WHEN v_vtype = 'numeric'::regtype THEN 'BETWEEN -1e300 AND 1e300'
-             ELSE 'BETWEEN -1e300::float8 AND 1e300::float8' END);
+    -- A row is folded in when its time is within years 1 to 9999 and its
+    -- value is a finite number within +-1e150, so that its square (which the
+    -- estimator forms) cannot overflow a float8. Numeric values are compared
+    -- before the cast, so that a huge numeric cannot make the cast fail.
+    v_lo := CASE t.time_type WHEN 'timestamptz' THEN '''0001-01-01 00:00:00+00''::timestamptz'
+        WHEN 'timestamp' THEN '''0001-01-01''::timestamp' ELSE '''0001-01-01''::date' END;
+    v_hi := CASE t.time_type WHEN 'timestamptz' THEN '''10000-01-01 00:00:00+00''::timestamptz'
+        WHEN 'timestamp' THEN '''10000-01-01''::timestamp' ELSE '''10000-01-01''::date' END;
+    v_valid := format('%1$s IS NOT NULL AND %1$s >= %4$s AND %1$s < %5$s AND %2$s IS NOT NULL AND %2$s %3$s',
+        v_t, v_v,
+        CASE WHEN v_vtype = 'numeric'::regtype THEN 'BETWEEN -1e150 AND 1e150'
+             ELSE 'BETWEEN -1e150::float8 AND 1e150::float8' END,
+        v_lo, v_hi);
     v_reason := format($r$CASE WHEN %1$s IS NULL THEN 'time is NULL'
         WHEN NOT isfinite(%1$s) THEN 'time is infinite'
+        WHEN NOT (%1$s >= %3$s AND %1$s < %4$s) THEN 'time is outside the years 1 to 9999'
         WHEN %2$s IS NULL THEN 'value is NULL'
         WHEN %2$s::text = 'NaN' THEN 'value is NaN'
         WHEN %2$s::text IN ('Infinity', '-Infinity') THEN 'value is infinite'
-        ELSE 'value is beyond +-1e300' END$r$, v_t, v_v);
+        ELSE 'value is beyond +-1e150 (too large to fold in without overflow)' END$r$, v_t, v_v, v_lo, v_hi);
+    v_key := sidetrend.series_key_expr(t.key_cols, 'r');
+    -- The time range of bucket b in the column's own type, so that an index
+    -- on the time column serves the recompute of one bucket. It is a
+    -- superset for date columns; the bucket index test after it is exact.
+    v_range := CASE t.time_type
+        WHEN 'timestamptz' THEN format('%1$s >= sidetrend.bucket_start(only_bucket, %2$L::interval, %3$L) AND %1$s < sidetrend.bucket_start(only_bucket + 1, %2$L::interval, %3$L)', v_t, t.bucket, t.tz)
+        WHEN 'timestamp' THEN format('%1$s >= (sidetrend.bucket_start(only_bucket, %2$L::interval, %3$L) AT TIME ZONE %3$L) AND %1$s < (sidetrend.bucket_start(only_bucket + 1, %2$L::interval, %3$L) AT TIME ZONE %3$L)', v_t, t.bucket, t.tz)
+        ELSE format('%1$s >= (sidetrend.bucket_start(only_bucket, %2$L::interval, %3$L) AT TIME ZONE %3$L)::date AND %1$s <= (sidetrend.bucket_start(only_bucket + 1, %2$L::interval, %3$L) AT TIME ZONE %3$L)::date', v_t, t.bucket, t.tz) END;
     v_last := CASE WHEN t.agg = 'last'
         THEN format('max(%1$s) AS lt, (array_agg(%2$s::float8 ORDER BY %1$s DESC, %2$s DESC))[1] AS lv', v_tstz, v_v)
         ELSE 'NULL::timestamptz AS lt, NULL::float8 AS lv' END;
@@ -356,27 +380,61 @@ BEGIN
 END
 $body$$f$, v_cap, t.id, v_sel, v_valid, v_reason, t.id::text);
 
+    -- Backfill: take in the table's current rows, for the whole tracker or
+    -- for one series. SHARE mode blocks writers (not readers) while the
+    -- table is read, so that no row is both in the log and in the scan.
     EXECUTE format($f$
-CREATE OR REPLACE FUNCTION %1$s() RETURNS void
+CREATE OR REPLACE FUNCTION %1$s(only_key text DEFAULT NULL) RETURNS void
 LANGUAGE plpgsql SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
 BEGIN
-    -- SHARE mode blocks writers (not readers) while the table is read whole,
-    -- so that no row is both in the log and in the scan.
     LOCK TABLE %2$s IN SHARE MODE;
-    DELETE FROM sidetrend.changes WHERE tracker_id = %3$s;
-    DELETE FROM sidetrend.points WHERE tracker_id = %3$s;
-    INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
-    SELECT %3$s, %6$s, to_jsonb(r) FROM %2$s r WHERE NOT coalesce(%5$s, false);
+    DELETE FROM sidetrend.changes WHERE tracker_id = %3$s AND (only_key IS NULL OR series_key = only_key);
+    DELETE FROM sidetrend.points WHERE tracker_id = %3$s AND (only_key IS NULL OR series_key = only_key);
+    IF only_key IS NULL THEN
+        DELETE FROM sidetrend.rejects WHERE tracker_id = %3$s;
+        INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
+        SELECT %3$s, %6$s, to_jsonb(r) FROM %2$s r WHERE NOT coalesce(%5$s, false);
+    END IF;
     INSERT INTO sidetrend.points (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v)
-    SELECT %3$s, g.* FROM (%4$s FROM %2$s r WHERE %5$s GROUP BY 1, 2) g;
-    UPDATE sidetrend.series SET rebuild = true WHERE tracker_id = %3$s;
+    SELECT %3$s, g.* FROM (%4$s FROM %2$s r WHERE %5$s AND (only_key IS NULL OR %7$s = only_key) GROUP BY 1, 2) g;
+    UPDATE sidetrend.series SET rebuild = true WHERE tracker_id = %3$s AND (only_key IS NULL OR series_key = only_key);
     INSERT INTO sidetrend.series (tracker_id, series_key, rebuild)
-    SELECT DISTINCT %3$s, p.series_key, true FROM sidetrend.points p WHERE p.tracker_id = %3$s
+    SELECT DISTINCT %3$s, p.series_key, true FROM sidetrend.points p
+    WHERE p.tracker_id = %3$s AND (only_key IS NULL OR p.series_key = only_key)
     ON CONFLICT ON CONSTRAINT series_pkey DO NOTHING;
-    UPDATE sidetrend.trackers SET backfilled = true WHERE id = %3$s;
+    IF only_key IS NULL THEN
+        UPDATE sidetrend.trackers SET backfilled = true WHERE id = %3$s;
+    END IF;
 END
-$body$$f$, v_back, v_rel, t.id, v_sel, v_valid, v_reason);
+$body$$f$, v_back, v_rel, t.id, v_sel, v_valid, v_reason, v_key);
 
+    -- Recompute one bucket from the source: for min, max and last, whose
+    -- value a delete cannot subtract.
+    EXECUTE format($f$
+CREATE OR REPLACE FUNCTION %1$s(only_key text, only_bucket bigint)
+RETURNS TABLE (n bigint, s float8, mn float8, mx float8, lt timestamptz, lv float8)
+LANGUAGE sql STABLE SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
+    SELECT g.n, g.s, g.mn, g.mx, g.lt, g.lv
+    FROM (%2$s FROM %3$s r WHERE %4$s AND %5$s AND %6$s = only_key GROUP BY 1, 2) g
+    WHERE g.b = only_bucket
+$body$$f$, v_rec, v_sel, v_rel, v_valid, v_range, v_key);
+
+    -- TRUNCATE empties the table: its series start over.
+    EXECUTE format($f$
+CREATE OR REPLACE FUNCTION %1$s() RETURNS trigger
+LANGUAGE plpgsql SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
+BEGIN
+    DELETE FROM sidetrend.changes WHERE tracker_id = %2$s;
+    DELETE FROM sidetrend.points WHERE tracker_id = %2$s;
+    UPDATE sidetrend.series SET rebuild = true WHERE tracker_id = %2$s;
+    PERFORM pg_notify('sidetrend', %3$L);
+    RETURN NULL;
+END
+$body$$f$, v_trunc, t.id, t.id::text);
+
+    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_trunc', v_rel);
+    EXECUTE format('CREATE TRIGGER %I AFTER TRUNCATE ON %s FOR EACH STATEMENT EXECUTE FUNCTION %s()',
+                   v_trg || '_trunc', v_rel, v_trunc);
     EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
     EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
     EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
@@ -410,12 +468,74 @@ BEGIN
         EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
         EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
         EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
+        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_trunc', v_rel);
     END IF;
     EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_capture_' || t.id);
-    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_backfill_' || t.id);
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_truncate_' || t.id);
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text)', '_backfill_' || t.id);
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text, bigint)', '_recompute_' || t.id);
+    DELETE FROM sidetrend.resync WHERE tracker_id = t.id;
     DELETE FROM sidetrend.changes WHERE tracker_id = t.id;
     DELETE FROM sidetrend.rejects WHERE tracker_id = t.id;
     DELETE FROM sidetrend.trackers WHERE id = t.id;
+END
+$fn$;
+-- +goose StatementEnd
+
+CREATE TABLE sidetrend.resync (
+    tracker_id  int NOT NULL,
+    series_key  text NOT NULL,
+    at          timestamptz NOT NULL DEFAULT now(),
+    PRIMARY KEY (tracker_id, series_key)
+);
+
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.rebuild(name text, series_key text DEFAULT NULL) RETURNS void
+LANGUAGE plpgsql AS $fn$
+DECLARE
+    v_id int;
+BEGIN
+    SELECT id INTO v_id FROM sidetrend.trackers t WHERE t.name = rebuild.name;
+    IF NOT FOUND THEN
+        RAISE EXCEPTION 'no tracker named "%"', rebuild.name
+            USING ERRCODE = 'undefined_object', HINT = 'See SELECT name FROM sidetrend.trackers.';
+    END IF;
+    IF rebuild.series_key IS NULL THEN
+        UPDATE sidetrend.trackers SET backfilled = false WHERE id = v_id;
+    ELSE
+        INSERT INTO sidetrend.resync (tracker_id, series_key) VALUES (v_id, rebuild.series_key)
+        ON CONFLICT DO NOTHING;
+    END IF;
+    PERFORM pg_notify('sidetrend', v_id::text);
+END
+$fn$;
+-- +goose StatementEnd
+
+-- recompute_dirty recomputes from the source every point of one tracker
+-- that a delete or update made dirty (min, max and last cannot subtract).
+-- +goose StatementBegin
+CREATE FUNCTION sidetrend.recompute_dirty(tracker_id int) RETURNS int
+LANGUAGE plpgsql AS $fn$
+DECLARE
+    p record;
+    r record;
+    v_n int := 0;
+BEGIN
+    FOR p IN SELECT pt.series_key, pt.bucket FROM sidetrend.points pt
+             WHERE pt.tracker_id = recompute_dirty.tracker_id AND pt.dirty
+             ORDER BY 1, 2 LOOP
+        EXECUTE format('SELECT * FROM sidetrend.%I($1, $2)', '_recompute_' || recompute_dirty.tracker_id)
+            INTO r USING p.series_key, p.bucket;
+        IF r.n IS NULL THEN
+            DELETE FROM sidetrend.points pt
+            WHERE pt.tracker_id = recompute_dirty.tracker_id AND pt.series_key = p.series_key AND pt.bucket = p.bucket;
+        ELSE
+            UPDATE sidetrend.points pt SET n = r.n, sum = r.s, min = r.mn, max = r.mx, last_t = r.lt, last_v = r.lv, dirty = false
+            WHERE pt.tracker_id = recompute_dirty.tracker_id AND pt.series_key = p.series_key AND pt.bucket = p.bucket;
+        END IF;
+        v_n := v_n + 1;
+    END LOOP;
+    RETURN v_n;
 END
 $fn$;
 -- +goose StatementEnd
@@ -471,7 +591,14 @@ COMMENT ON VIEW sidetrend.forecasts IS 'Forecasts per series and horizon 1..H wi
 COMMENT ON VIEW sidetrend.slopes IS 'Local trend level and slope per series (value units per bucket); direction up/down when |slope_t| >= 2, else flat.';
 COMMENT ON VIEW sidetrend.series_status IS 'Per series: folded points, newest folded bucket, warming or ready, seconds the oldest pending change has waited.';
 
+COMMENT ON FUNCTION sidetrend.rebuild(text, text) IS 'Queue a rebuild from the source table itself (for changes made with triggers disabled): the whole tracker, or one series.';
+COMMENT ON FUNCTION sidetrend.recompute_dirty(int) IS 'Internal: recompute from the source the buckets of a min, max or last tracker that a delete or update touched.';
+COMMENT ON TABLE sidetrend.resync IS 'Series queued by sidetrend.rebuild(name, series_key) to be read again from the source table.';
+
 -- +goose Down
+DROP FUNCTION IF EXISTS sidetrend.recompute_dirty(int);
+DROP FUNCTION IF EXISTS sidetrend.rebuild(text, text);
+DROP TABLE IF EXISTS sidetrend.resync;
 DROP VIEW IF EXISTS sidetrend.series_status;
 DROP VIEW IF EXISTS sidetrend.slopes;
 DROP VIEW IF EXISTS sidetrend.forecasts;

@@ -168,7 +168,13 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	if err := s.refreshTrackers(ctx); err != nil {
 		return err
 	}
+	if err := s.markBroken(ctx); err != nil {
+		return err
+	}
 	if err := s.backfill(ctx); err != nil {
+		return err
+	}
+	if err := s.resync(ctx); err != nil {
 		return err
 	}
 	for {
@@ -311,6 +317,9 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 	if claimed == 0 {
 		return 0, nil
 	}
+	if err := s.recomputeDirty(ctx, tx, touched); err != nil {
+		return 0, err
+	}
 	if err := s.advance(ctx, tx, touched); err != nil {
 		return 0, err
 	}
@@ -321,6 +330,75 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 	s.stats.Batches++
 	s.batchDone("drain", before, began)
 	return int(claimed), nil
+}
+
+// recomputeDirty rereads from the source every bucket of a min, max or last
+// tracker that a delete or an update touched: those aggregates cannot be
+// undone by subtraction.
+func (s *Syncer) recomputeDirty(ctx context.Context, tx pgx.Tx, touched map[seriesID]int64) error {
+	done := map[int]bool{}
+	for id := range touched {
+		t := s.trackers[id.tracker]
+		if t == nil || done[id.tracker] || (t.Agg != "min" && t.Agg != "max" && t.Agg != "last") {
+			continue
+		}
+		done[id.tracker] = true
+		if _, err := tx.Exec(ctx, `SELECT sidetrend.recompute_dirty($1)`, int32(id.tracker)); err != nil {
+			return fmt.Errorf("recompute buckets of tracker %q: %w", t.Name, err)
+		}
+	}
+	return nil
+}
+
+// markBroken flags trackers whose source table is gone (dropped): the
+// sidecar keeps serving their last forecasts and every other tracker.
+func (s *Syncer) markBroken(ctx context.Context) error {
+	tag, err := s.pool.Exec(ctx, `
+		UPDATE sidetrend.trackers t SET status = 'broken',
+		       last_error = format('source table %s was dropped; untrack it or track the new table', t.source_name)
+		WHERE t.status = 'active' AND NOT EXISTS (SELECT 1 FROM pg_catalog.pg_class c WHERE c.oid = t.source)`)
+	if err != nil {
+		return fmt.Errorf("check source tables: %w", err)
+	}
+	if tag.RowsAffected() > 0 {
+		s.log.Warn("trackers marked broken: source table dropped", "count", tag.RowsAffected())
+		return s.refreshTrackers(ctx)
+	}
+	return nil
+}
+
+// resync rereads single series from their source tables, as queued by
+// sidetrend.rebuild(name, series_key).
+func (s *Syncer) resync(ctx context.Context) error {
+	for {
+		tx, err := s.pool.Begin(ctx)
+		if err != nil {
+			return fmt.Errorf("begin resync: %w", err)
+		}
+		var tid int32
+		var key string
+		err = tx.QueryRow(ctx, `
+			DELETE FROM sidetrend.resync r WHERE (r.tracker_id, r.series_key) =
+			    (SELECT tracker_id, series_key FROM sidetrend.resync ORDER BY at LIMIT 1 FOR UPDATE SKIP LOCKED)
+			RETURNING r.tracker_id, r.series_key`).Scan(&tid, &key)
+		if errors.Is(err, pgx.ErrNoRows) {
+			tx.Rollback(ctx)
+			return nil
+		}
+		t := s.trackers[int(tid)]
+		if err == nil && t != nil && t.Status == "active" {
+			fn := pgx.Identifier{"sidetrend", fmt.Sprintf("_backfill_%d", tid)}.Sanitize()
+			_, err = tx.Exec(ctx, `SELECT `+fn+`($1)`, key)
+		}
+		if err == nil {
+			err = tx.Commit(ctx)
+		}
+		if err != nil {
+			tx.Rollback(context.WithoutCancel(ctx))
+			return fmt.Errorf("rebuild series %q from its source: %w", key, err)
+		}
+		s.log.Info("series reread from source", "tracker_id", tid, "series_key", key)
+	}
 }
 
 // dueBatch advances series that have no new change but a bucket the clock
