@@ -88,12 +88,20 @@ func referenceFit(t *testing.T, pool *pgxpool.Pool, r refTracker) map[string]*es
 		t.Fatal(err)
 	}
 	out := map[string]*estimator.State{}
+	now := time.Now()
 	for key, buckets := range byKey {
 		idx := make([]int64, 0, len(buckets))
 		for b := range buckets {
 			idx = append(idx, b)
 		}
 		sort.Slice(idx, func(i, j int) bool { return idx[i] < idx[j] })
+		// The newest bucket is folded only once the clock has passed its end.
+		if last := idx[len(idx)-1]; cal.Start(last + 1).After(now) {
+			idx = idx[:len(idx)-1]
+			if len(idx) == 0 {
+				continue
+			}
+		}
 		var ys []float64
 		for b := idx[0]; b <= idx[len(idx)-1]; b++ {
 			a := buckets[b]
