@@ -37,6 +37,7 @@ func newApp() *cli.App {
 			trackCommand(),
 			untrackCommand(),
 			runCommand(),
+			rebuildCommand(),
 			{
 				Name:  "version",
 				Usage: "print the version",

@@ -137,3 +137,58 @@ func untrackCommand() *cli.Command {
 		},
 	}
 }
+
+func rebuildCommand() *cli.Command {
+	return &cli.Command{
+		Name:  "rebuild",
+		Usage: "reread trackers or single series from their source tables (after changes made with triggers disabled)",
+		UsageText: "sidetrend rebuild [--tracker NAME [--series KEY]]\n" +
+			"   in SQL: SELECT sidetrend.rebuild('NAME'[, 'KEY']) queues the same for the running sidecar",
+		Flags: []cli.Flag{
+			dbFlag,
+			&cli.StringFlag{Name: "tracker", Usage: "tracker name (default: every tracker)"},
+			&cli.StringFlag{Name: "series", Usage: "one series key of the tracker"},
+		},
+		Action: func(c *cli.Context) error {
+			if c.IsSet("series") && !c.IsSet("tracker") {
+				return fmt.Errorf("--series needs --tracker: say which tracker the series %q belongs to", c.String("series"))
+			}
+			log := newLogger(c)
+			pool, err := pgsync.Connect(c.Context, c.String("db"))
+			if err != nil {
+				return err
+			}
+			defer pool.Close()
+			var names []string
+			if c.IsSet("tracker") {
+				names = []string{c.String("tracker")}
+			} else {
+				ts, err := pgsync.LoadTrackers(c.Context, pool)
+				if err != nil {
+					return err
+				}
+				for _, t := range ts {
+					if t.Status == "active" {
+						names = append(names, t.Name)
+					}
+				}
+			}
+			for _, name := range names {
+				var key any
+				if c.IsSet("series") {
+					key = c.String("series")
+				}
+				if _, err := pool.Exec(c.Context, `SELECT sidetrend.rebuild($1, $2)`, name, key); err != nil {
+					return fmt.Errorf("rebuild %s: %w", name, err)
+				}
+			}
+			s := pgsync.NewSyncer(pool, log)
+			if err := s.CatchUp(c.Context); err != nil {
+				return err
+			}
+			st := s.Stats()
+			fmt.Fprintf(c.App.Writer, "rebuilt %d trackers: %d series replayed\n", len(names), st.Rebuilds)
+			return nil
+		},
+	}
+}
