@@ -1,8 +1,10 @@
 package pgsync
 
 import (
+	"bytes"
 	"context"
 	"fmt"
+	"log/slog"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -174,6 +176,24 @@ func TestKillNineLosesNothing(t *testing.T) {
 	}
 }
 
+// lockedBuffer is a bytes.Buffer safe for the logger's goroutine and ours.
+type lockedBuffer struct {
+	mu  sync.Mutex
+	buf bytes.Buffer
+}
+
+func (b *lockedBuffer) Write(p []byte) (int, error) {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.buf.Write(p)
+}
+
+func (b *lockedBuffer) String() string {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.buf.String()
+}
+
 func tail(s string, n int) string {
 	lines := strings.Split(strings.TrimRight(s, "\n"), "\n")
 	if len(lines) > n {
@@ -209,6 +229,12 @@ func TestPostgresRestartsUnderLoad(t *testing.T) {
 
 	caught := make(chan Stats, 1)
 	var sessionErrors atomic.Int64
+	var logBuf lockedBuffer
+	defer func() {
+		if t.Failed() {
+			t.Logf("sidecar log tail:\n%s", tail(logBuf.String(), 40))
+		}
+	}()
 	runner := NewRunner(url, RunnerConfig{
 		Poll: 200 * time.Millisecond,
 		OnCaughtUp: func(s Stats) {
@@ -218,7 +244,7 @@ func TestPostgresRestartsUnderLoad(t *testing.T) {
 			}
 		},
 		OnSessionError: func(error) { sessionErrors.Add(1) },
-	}, nil)
+	}, slog.New(slog.NewTextHandler(&logBuf, nil)))
 	if err := runner.Start(ctx); err != nil {
 		t.Fatal(err)
 	}
@@ -239,13 +265,17 @@ func TestPostgresRestartsUnderLoad(t *testing.T) {
 		t.Fatal(err)
 	}
 	// Wait until the sidecar, by itself, has caught up with everything.
-	deadline := time.After(2 * time.Minute)
+	deadline := time.After(10 * time.Minute)
 	for {
 		var left int
 		select {
 		case <-caught:
+		case <-time.After(10 * time.Second):
+			pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&left)
+			t.Logf("waiting for the sidecar: %d changes left", left)
+			continue
 		case <-deadline:
-			t.Fatal("sidecar did not catch up within 2 minutes after the restarts")
+			t.Fatal("sidecar did not catch up within 10 minutes after the restarts")
 		}
 		if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&left); err == nil && left == 0 {
 			break

@@ -136,7 +136,7 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 	syncer.OnBatch, syncer.Progress = r.cfg.OnBatch, r.cfg.Progress
 	backoff := 100 * time.Millisecond
 	for ctx.Err() == nil {
-		err := r.session(ctx, pool, syncer)
+		err := r.session(ctx, pool, syncer, func() { backoff = 100 * time.Millisecond })
 		if ctx.Err() != nil {
 			return
 		}
@@ -156,7 +156,7 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 // session holds one listening connection: LISTEN first, then catch up from
 // the log, then wait for a notification or the poll timer, repeatedly. It
 // returns on any connection error.
-func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer) error {
+func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer, healthy func()) error {
 	pconn, err := pool.Acquire(ctx)
 	if err != nil {
 		return err
@@ -173,6 +173,7 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		if err := syncer.CatchUp(ctx); err != nil {
 			return err
 		}
+		healthy()
 		if r.cfg.OnCaughtUp != nil {
 			r.cfg.OnCaughtUp(syncer.Stats())
 		}
