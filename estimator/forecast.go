@@ -10,7 +10,7 @@ const MaxHorizon = 100000
 
 // Forecast holds the forecasts for l = 1..H buckets ahead; index l-1 in
 // every slice. Interval bounds are NaN while T - p <= 0 (no residual degrees
-// of freedom yet).
+// of freedom yet) or is too small for a finite t quantile (below about 0.0065).
 type Forecast struct {
 	Yhat       []float64 // f(l)^T theta_N
 	SE         []float64 // sigma sqrt(1 + f(l)^T F^-1 f(l))
@@ -53,7 +53,18 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 	fc.Sigma = st.Sigma()
 	fc.T80, fc.T95 = math.NaN(), math.NaN()
 	if fc.DF > 0 {
-		fc.T80, fc.T95 = studentQuantiles(fc.DF)
+		// The quantiles Observe cached for this T - p, if any (read only,
+		// so that concurrent queries do not race): in steady state T stops
+		// changing, and the quantile is most of the cost of a forecast.
+		cached := false
+		for _, q := range st.tq.slot {
+			if q.t80 != 0 && q.df == fc.DF {
+				fc.T80, fc.T95, cached = q.t80, q.t95, true
+			}
+		}
+		if !cached {
+			fc.T80, fc.T95 = studentQuantiles(fc.DF)
+		}
 	}
 	fl := make([]float64, p)
 	cum := make([]float64, p)

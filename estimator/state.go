@@ -75,26 +75,70 @@ type errorSums struct {
 	dWeight float64 // discounted count of scored errors
 }
 
-// quantileCache keeps the Student t quantiles for the last degrees of
-// freedom seen: in steady state T stops changing and the quantiles are free.
+// quantileCache keeps the Student t quantiles for the degrees of freedom of
+// the last steps: in steady state T stops changing (or alternates between
+// two neighbouring floats) and the quantiles are free.
 type quantileCache struct {
-	df       float64
-	t80, t95 float64
+	slot       [2]quantiles
+	next       int     // slot to fill next
+	last, prev float64 // df of the two previous scored steps
 }
 
-func (c *quantileCache) get(df float64) (t80, t95 float64) {
-	if df != c.df || c.t80 == 0 {
-		c.df = df
-		c.t80, c.t95 = studentQuantiles(df)
+type quantiles struct {
+	df, t80, t95 float64 // valid when t80 != 0
+}
+
+// score decides whether the actual fell inside the 80 % and 95 % intervals
+// of the one-step forecast, |e| <= t_q(df) SE. Once df repeats the cached
+// quantiles answer. While df still changes (T grows towards 1/(1 - lambda))
+// one evaluation of the t distribution function P(|t| <= |e|/SE) answers
+// both, and the quantile (an inverse incomplete beta, some thirty times
+// dearer) is computed only for an actual outside the 95 % interval, whose
+// bounds a surprise reports.
+func (st *State) score(step *Step, e, df float64) {
+	c := &st.tq
+	for _, q := range c.slot {
+		if q.t80 != 0 && q.df == df {
+			step.Lo95, step.Hi95 = step.Yhat-q.t95*step.SE, step.Yhat+q.t95*step.SE
+			step.In80, step.In95 = math.Abs(e) <= q.t80*step.SE, math.Abs(e) <= q.t95*step.SE
+			return
+		}
 	}
-	return c.t80, c.t95
+	if df == c.last || df == c.prev {
+		// A df seen within the last two steps: T has settled; cache it.
+		if t80, t95 := studentQuantiles(df); finite(t80) {
+			c.slot[c.next] = quantiles{df: df, t80: t80, t95: t95}
+			c.next = 1 - c.next
+			st.score(step, e, df)
+			return
+		}
+	}
+	c.prev, c.last = c.last, df
+	if step.SE == 0 {
+		step.In80, step.In95 = e == 0, e == 0
+	} else {
+		d := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: df}
+		cdf := d.CDF(math.Abs(e) / step.SE)
+		step.In80, step.In95 = cdf <= 0.9, cdf <= 0.975
+	}
+	if !step.In95 {
+		if _, t95 := studentQuantiles(df); finite(t95) {
+			step.Lo95, step.Hi95 = step.Yhat-t95*step.SE, step.Yhat+t95*step.SE
+		}
+	}
 }
 
 // studentQuantiles returns the two-sided 80 % and 95 % critical values of
-// Student's t with df degrees of freedom (df may be fractional).
+// Student's t with df degrees of freedom (df may be fractional). Below about
+// df = 0.0065 the 95 % value overflows; then there is no interval and both
+// are NaN.
 func studentQuantiles(df float64) (t80, t95 float64) {
 	d := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: df}
-	return d.Quantile(0.9), d.Quantile(0.975)
+	t80, t95 = d.Quantile(0.9), d.Quantile(0.975)
+	if !finite(t80) || !finite(t95) {
+		return math.NaN(), math.NaN()
+	}
+	return t80, t95
 }
 
 // NewState returns an empty state (F = 0, h = 0) for a valid spec.
@@ -175,10 +219,14 @@ type Step struct {
 	Yhat   float64 // f(1)^T theta_old, the one-step forecast
 	Err    float64 // Y - Yhat
 	SE     float64 // standard error of the one-step forecast, NaN if T - p <= 0
-	Lo95   float64 // 95 % interval issued one step earlier (NaN if none)
-	Hi95   float64
-	In80   bool // Y inside the 80 % interval (false when there was none)
-	In95   bool
+	// Lo95, Hi95 is the 95 % interval issued one step earlier. It is always
+	// filled when Y fell outside it; while T is still changing (the first
+	// few hundred steps) it may be NaN for a Y inside it: In80 and In95 are
+	// then decided from the t distribution function (see score).
+	Lo95 float64
+	Hi95 float64
+	In80 bool // Y inside the 80 % interval (false when there was none)
+	In95 bool
 }
 
 // Observe advances the state by one bucket that has the value y. NaN, Inf or
@@ -204,10 +252,7 @@ func (st *State) Observe(y float64) (Step, error) {
 		if df := st.DF(); df > 0 {
 			// Var(Y - yhat) = sigma^2 (1 + f(1)^T F^-1 f(1)).
 			step.SE = math.Sqrt(st.s/df) * math.Sqrt(1+lam*q)
-			t80, t95 := st.tq.get(df)
-			step.Lo95, step.Hi95 = step.Yhat-t95*step.SE, step.Yhat+t95*step.SE
-			step.In80 = math.Abs(e) <= t80*step.SE
-			step.In95 = math.Abs(e) <= t95*step.SE
+			st.score(&step, e, df)
 		}
 	}
 
@@ -222,7 +267,13 @@ func (st *State) Observe(y float64) (Step, error) {
 	if st.pd {
 		s += e * e / (1 + q)
 	}
-	if !finite(syy) || !finite(s) || !allFinite(st.hnew) || (ready && !finite(e*e)) {
+	errs := st.errs
+	if step.Scored {
+		errs.add(y, e, step, lam)
+	} else {
+		errs.decay(lam)
+	}
+	if !finite(syy) || !finite(s) || !allFinite(st.hnew) || !errs.finite() {
 		return Step{}, fmt.Errorf("estimator: value %v is too large to fold in without overflow", y)
 	}
 
@@ -235,25 +286,28 @@ func (st *State) Observe(y float64) (Step, error) {
 	copy(st.h, st.hnew)
 	st.t = lam*st.t + 1
 	st.syy = syy
-	wasPD := st.pd
+	// The recursion for S needs a previous fit that is good to working
+	// precision: e and q from an F whose scaled condition number is beyond
+	// 1/MinRCond carry errors that S keeps, for good at lambda = 1 (S was 1 %
+	// off after 16 weeks of a quadratic trend with yearly harmonics). Until
+	// the state is fitted, S comes from its definition.
+	wasFitted := st.pd && st.rcond >= MinRCond
 	st.refactor()
 	switch {
-	case st.pd && wasPD:
+	case st.pd && wasFitted:
 		st.s = s
 	case st.pd:
-		// F has just become positive definite: the recursion for S needs a
-		// previous fit, so start it from its definition once.
-		st.s = math.Max(0, st.syy-dot(st.h, st.theta))
+		// F is positive definite but was not well conditioned one step
+		// earlier: start (or restart) S from its definition,
+		// S = syy - h^T F^-1 h, with h^T F^-1 h = ||C^-1 h||^2 (a sum of
+		// squares: at worst +Inf for huge values, never NaN).
+		st.s = math.Max(0, st.syy-st.quadForm(st.h))
 	default:
 		st.s = 0
 	}
 	st.n++
 	st.steps++
-	if step.Scored {
-		st.errs.add(y, e, step, lam)
-	} else {
-		st.errs.decay(lam)
-	}
+	st.errs = errs
 	return step, nil
 }
 
@@ -262,9 +316,11 @@ func (es *errorSums) add(y, e float64, step Step, lam float64) {
 	es.sumAbs += math.Abs(e)
 	es.sumSq += e * e
 	es.sumErr += e
-	if y != 0 {
+	// An actual so close to 0 that |e / Y| overflows has no percentage
+	// error, like Y = 0 itself.
+	if ape := math.Abs(e / y); y != 0 && finite(es.sumAPE+ape) {
 		es.nAPE++
-		es.sumAPE += math.Abs(e / y)
+		es.sumAPE += ape
 	}
 	if !math.IsNaN(step.SE) {
 		es.nInt++
@@ -278,6 +334,12 @@ func (es *errorSums) add(y, e float64, step Step, lam float64) {
 	es.dAbs = lam*es.dAbs + math.Abs(e)
 	es.dSq = lam*es.dSq + e*e
 	es.dWeight = lam*es.dWeight + 1
+}
+
+// finite reports whether every sum is a finite number (an encoding of the
+// state can hold only those).
+func (es *errorSums) finite() bool {
+	return allFinite([]float64{es.sumAbs, es.sumSq, es.sumErr, es.sumAPE, es.dAbs, es.dSq, es.dWeight})
 }
 
 func (es *errorSums) decay(w float64) {
@@ -297,6 +359,9 @@ func (st *State) Skip(k int) error {
 	}
 	if k == 0 {
 		return nil
+	}
+	if int64(k) > math.MaxInt64-st.steps {
+		return fmt.Errorf("estimator: cannot skip %d buckets: the bucket count would overflow", k)
 	}
 	p := st.p
 	w := math.Pow(st.lambda, float64(k))
