@@ -432,18 +432,20 @@ BEGIN
 END
 $body$$f$, v_trunc, t.id, t.id::text);
 
-    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_trunc', v_rel);
-    EXECUTE format('CREATE TRIGGER %I AFTER TRUNCATE ON %s FOR EACH STATEMENT EXECUTE FUNCTION %s()',
+    EXECUTE format('CREATE OR REPLACE TRIGGER %I AFTER TRUNCATE ON %s FOR EACH STATEMENT EXECUTE FUNCTION %s()',
                    v_trg || '_trunc', v_rel, v_trunc);
-    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
-    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
-    EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
-    EXECUTE format('CREATE TRIGGER %I AFTER INSERT ON %s REFERENCING NEW TABLE AS new_rows '
+    EXECUTE format('CREATE OR REPLACE TRIGGER %I AFTER INSERT ON %s REFERENCING NEW TABLE AS new_rows '
                    'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_ins', v_rel, v_cap);
-    EXECUTE format('CREATE TRIGGER %I AFTER UPDATE ON %s REFERENCING OLD TABLE AS old_rows NEW TABLE AS new_rows '
+    EXECUTE format('CREATE OR REPLACE TRIGGER %I AFTER UPDATE ON %s REFERENCING OLD TABLE AS old_rows NEW TABLE AS new_rows '
                    'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_upd', v_rel, v_cap);
-    EXECUTE format('CREATE TRIGGER %I AFTER DELETE ON %s REFERENCING OLD TABLE AS old_rows '
+    EXECUTE format('CREATE OR REPLACE TRIGGER %I AFTER DELETE ON %s REFERENCING OLD TABLE AS old_rows '
                    'FOR EACH STATEMENT EXECUTE FUNCTION %s()', v_trg || '_del', v_rel, v_cap);
+    -- The generated functions run with sidetrend's rights: nobody calls them
+    -- directly (a trigger fires without an EXECUTE check).
+    EXECUTE format('REVOKE ALL ON FUNCTION %s() FROM PUBLIC', v_cap);
+    EXECUTE format('REVOKE ALL ON FUNCTION %s() FROM PUBLIC', v_trunc);
+    EXECUTE format('REVOKE ALL ON FUNCTION %s(text) FROM PUBLIC', v_back);
+    EXECUTE format('REVOKE ALL ON FUNCTION %s(text, bigint) FROM PUBLIC', v_rec);
 END
 $fn$;
 -- +goose StatementEnd
@@ -453,25 +455,16 @@ CREATE FUNCTION sidetrend.untrack(name text) RETURNS void
 LANGUAGE plpgsql SET client_min_messages = warning AS $fn$
 DECLARE
     t sidetrend.trackers;
-    v_trg text;
-    v_rel text;
 BEGIN
     SELECT * INTO t FROM sidetrend.trackers WHERE trackers.name = untrack.name;
     IF NOT FOUND THEN
         RAISE EXCEPTION 'no tracker named "%"', untrack.name
             USING ERRCODE = 'undefined_object', HINT = 'See SELECT name FROM sidetrend.trackers.';
     END IF;
-    v_trg := '_sidetrend_' || t.id;
-    SELECT format('%I.%I', n.nspname, c.relname) INTO v_rel
-    FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace WHERE c.oid = t.source;
-    IF v_rel IS NOT NULL THEN
-        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_ins', v_rel);
-        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_upd', v_rel);
-        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_del', v_rel);
-        EXECUTE format('DROP TRIGGER IF EXISTS %I ON %s', v_trg || '_trunc', v_rel);
-    END IF;
-    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_capture_' || t.id);
-    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I()', '_truncate_' || t.id);
+    -- Dropping the trigger functions CASCADE drops their triggers; unlike
+    -- DROP TRIGGER it needs no ownership of the source table.
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I() CASCADE', '_capture_' || t.id);
+    EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I() CASCADE', '_truncate_' || t.id);
     EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text)', '_backfill_' || t.id);
     EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text, bigint)', '_recompute_' || t.id);
     DELETE FROM sidetrend.resync WHERE tracker_id = t.id;
@@ -591,6 +584,8 @@ COMMENT ON VIEW sidetrend.forecasts IS 'Forecasts per series and horizon 1..H wi
 COMMENT ON VIEW sidetrend.slopes IS 'Local trend level and slope per series (value units per bucket); direction up/down when |slope_t| >= 2, else flat.';
 COMMENT ON VIEW sidetrend.series_status IS 'Per series: folded points, newest folded bucket, warming or ready, seconds the oldest pending change has waited.';
 
+COMMENT ON FUNCTION sidetrend.install_capture(int) IS 'Internal: (re)create the capture, truncate, backfill and recompute functions and the triggers of one tracker from its row in sidetrend.trackers.';
+COMMENT ON FUNCTION sidetrend.series_key_expr(text[], text) IS 'Internal: the SQL expression that joins a row''s key columns into its series_key (values as text, joined with |).';
 COMMENT ON FUNCTION sidetrend.rebuild(text, text) IS 'Queue a rebuild from the source table itself (for changes made with triggers disabled): the whole tracker, or one series.';
 COMMENT ON FUNCTION sidetrend.recompute_dirty(int) IS 'Internal: recompute from the source the buckets of a min, max or last tracker that a delete or update touched.';
 COMMENT ON TABLE sidetrend.resync IS 'Series queued by sidetrend.rebuild(name, series_key) to be read again from the source table.';

@@ -70,7 +70,7 @@ ON CONFLICT (tracker_id, series_key) DO NOTHING`
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
 // that two sidecars never wait on each other in a cycle.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda
+SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -93,7 +93,7 @@ UPDATE sidetrend.series SET
     yhat = $10, lo80 = $11, hi80 = $12, lo95 = $13, hi95 = $14, cum_yhat = $15, cum_lo95 = $16, cum_hi95 = $17,
     level = $18, slope = $19, slope_se = $20, sigma = $21,
     n_errors = $22, mae = $23, rmse = $24, mape = $25, bias = $26, coverage80 = $27, coverage95 = $28,
-    last_error = $29
+    last_error = $29, last_direction = $30
 WHERE tracker_id = $1 AND series_key = $2`
 
 const deleteSeriesSQL = `DELETE FROM sidetrend.series WHERE tracker_id = $1 AND series_key = $2`
@@ -121,6 +121,11 @@ type Syncer struct {
 	OnBatch func(BatchInfo)
 	// Progress, if set, is told about long work: backfills and replays.
 	Progress Progress
+	// Tune makes CatchUp end with TunePending: trackers just backfilled (and
+	// those asked for with sidetrend.request_tune) get their lambda search,
+	// and trackers created with lambda => NULL get the result applied. The
+	// long-running Runner tunes in its own goroutine instead.
+	Tune bool
 }
 
 // BatchInfo describes one committed batch.
@@ -196,6 +201,23 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 			defer s.Progress.Done()
 		}
 	}
+	if err := s.drainDue(ctx); err != nil {
+		return err
+	}
+	if !s.Tune {
+		return nil
+	}
+	_, applied, err := TunePending(ctx, s.pool, 0, s.log)
+	if err != nil {
+		return err
+	}
+	if applied {
+		return s.drainDue(ctx) // replay the series whose lambda changed
+	}
+	return nil
+}
+
+func (s *Syncer) drainDue(ctx context.Context) error {
 	for {
 		n, err := s.retry(ctx, s.dueBatch)
 		if err != nil {
@@ -463,12 +485,17 @@ type seriesWork struct {
 	tracker *Tracker
 	spec    estimator.Spec // the tracker's model, with the series' own lambda if tuned
 	lambda  *float64       // the series' own lambda, nil for the tracker's
-	state   *estimator.State
-	folded  int64 // newest folded bucket, valid when hasFold
-	hasFold bool
-	first   int64
-	rebuild bool
-	points  []point
+
+	watch      *SurpriseWatch
+	oldFolded  int64 // newest folded bucket before this batch
+	oldHasFold bool
+	served     *estimator.Forecast // the forecast written, if any
+	state      *estimator.State
+	folded     int64 // newest folded bucket, valid when hasFold
+	hasFold    bool
+	first      int64
+	rebuild    bool
+	points     []point
 }
 
 type point struct {
@@ -523,7 +550,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		var blob []byte
 		var rebuild bool
 		var lambda *float64
-		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda); err != nil {
+		var lastDir *string
+		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
@@ -539,6 +567,17 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		if w.hasFold && minTouched[id] <= w.folded {
 			w.rebuild = true
 		}
+		// Surprises are reported for buckets folded for the first time;
+		// a replay moves the slope direction but announces nothing old,
+		// and a series' first fold (a backfill) announces no history.
+		w.watch = &SurpriseWatch{TrackerID: id.tracker, SeriesKey: key, After: math.MaxInt64}
+		if w.hasFold {
+			w.watch.After = w.folded
+			if lastDir != nil && !w.rebuild {
+				w.watch.LastDirection = *lastDir
+			}
+		}
+		w.oldFolded, w.oldHasFold = w.folded, w.hasFold
 		if !w.rebuild && w.hasFold {
 			st, err := estimator.DecodeFor(blob, w.spec)
 			if err != nil {
@@ -584,6 +623,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 
 	batch := &pgx.Batch{}
 	now := s.now()
+	var surprises []Surprise
+	var history []IssuedForecast
 	for _, id := range ids {
 		w := work[id]
 		if w == nil {
@@ -602,6 +643,10 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		batch.Queue(updateSeriesSQL, upd...)
 		s.stats.Series++
+		surprises = append(surprises, w.watch.Events...)
+		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
+			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
+		}
 	}
 	if batch.Len() == 0 {
 		return nil
@@ -609,7 +654,10 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
 		return fmt.Errorf("write series: %w", err)
 	}
-	return nil
+	if err := RecordSurprises(ctx, tx, surprises); err != nil {
+		return err
+	}
+	return RecordHistory(ctx, tx, history)
 }
 
 // value maps a bucket aggregate to the number the estimator sees; ok is
@@ -681,12 +729,16 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 		y, _ := t.value(p)
 		if w.hasFold {
 			if gap := p.bucket - w.folded - 1; gap > 0 {
-				if err := s.fillGap(w, gap); err != nil {
+				if err := s.fillGap(w, w.folded+1, gap); err != nil {
 					return nil, err
 				}
 			}
 		}
-		if _, err := w.state.Observe(y); err != nil {
+		step, err := w.state.Observe(y)
+		if err == nil {
+			w.watch.Observed(p.bucket, y, step, w.state)
+		}
+		if err != nil {
 			msg := fmt.Sprintf("bucket %d: %v", p.bucket, err)
 			lastErr = &msg
 			if err := w.state.Skip(1); err != nil {
@@ -708,12 +760,14 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 
 // fillGap advances over buckets without rows: zeros when the tracker says
 // empty buckets mean zero, a skip (no information) otherwise.
-func (s *Syncer) fillGap(w *seriesWork, gap int64) error {
+func (s *Syncer) fillGap(w *seriesWork, from, gap int64) error {
 	if w.tracker.Empty == "zero" {
 		for i := int64(0); i < gap; i++ {
-			if _, err := w.state.Observe(0); err != nil {
+			step, err := w.state.Observe(0)
+			if err != nil {
 				return err
 			}
+			w.watch.Observed(from+i, 0, step, w.state)
 		}
 		return nil
 	}
@@ -744,7 +798,10 @@ func nullables(xs []float64) []*float64 {
 
 func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastErr *string) []any {
 	t := w.tracker
-	args := make([]any, 29)
+	args := make([]any, 30)
+	if w.watch != nil && w.watch.LastDirection != "" {
+		args[29] = w.watch.LastDirection
+	}
 	args[0], args[1] = int32(w.id.tracker), w.id.key
 	args[7], args[8], args[28] = pendingDue, w.lambda, lastErr
 	if st == nil {
@@ -760,6 +817,7 @@ func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastE
 	}
 	fc, err := st.Forecast(t.Horizon)
 	if err == nil {
+		w.served = fc
 		args[9], args[10], args[11] = nullables(fc.Yhat), nullables(fc.Lo80), nullables(fc.Hi80)
 		args[12], args[13], args[14] = nullables(fc.Lo95), nullables(fc.Hi95), nullables(fc.CumYhat)
 		args[15], args[16] = nullables(fc.CumLo95), nullables(fc.CumHi95)

@@ -59,6 +59,10 @@ type RunnerConfig struct {
 	// OnSessionError, if set, is told why a session ended (before the
 	// reconnect backoff): metrics and health checks use it.
 	OnSessionError func(error)
+	// TuneEvery is how often the background tuner looks for trackers to
+	// tune (new backfills, requests, results older than a day); 0 means
+	// every minute, negative turns it off.
+	TuneEvery time.Duration
 }
 
 // Runner is the long-lived sidecar: it LISTENs, catches up from the change
@@ -107,7 +111,16 @@ func (r *Runner) Start(ctx context.Context) error {
 	go func() {
 		defer close(r.done)
 		defer pool.Close()
+		var wg sync.WaitGroup
+		if r.cfg.TuneEvery >= 0 {
+			wg.Add(1)
+			go func() {
+				defer wg.Done()
+				r.tuner(ctx, pool)
+			}()
+		}
 		r.loop(ctx, pool)
+		wg.Wait()
 	}()
 	return nil
 }
@@ -200,6 +213,26 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 				}
 				break
 			}
+		}
+	}
+}
+
+// tuner runs the lambda searches apart from the drain, so that a long
+// search never delays forecasts. Applied lambdas flag their series for a
+// replay, which the drain loop's due sweep picks up.
+func (r *Runner) tuner(ctx context.Context, pool *pgxpool.Pool) {
+	every := r.cfg.TuneEvery
+	if every == 0 {
+		every = time.Minute
+	}
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-time.After(jitter(every)):
+		}
+		if _, _, err := TunePending(ctx, pool, 24*time.Hour, r.log); err != nil && ctx.Err() == nil {
+			r.log.Warn("tuning failed", "err", err)
 		}
 	}
 }

@@ -107,3 +107,51 @@ func LoadSeries(ctx context.Context, q querier, tracker, key string) (*SeriesDat
 	}
 	return d, rows.Err()
 }
+
+// SeriesRow is one folded series as listed by ListSeries.
+type SeriesRow struct {
+	Tracker     *Tracker
+	Key         string
+	Points      int64
+	FirstBucket time.Time
+	LastBucket  time.Time
+	FirstIndex  int64
+	LastIndex   int64
+	Ready       bool
+	Lambda      float64 // the series' own lambda if tuned, else the tracker's
+}
+
+const listSeriesSQL = `
+SELECT s.tracker_id, s.series_key, s.points,
+       sidetrend.bucket_start(s.first_bucket, t.bucket, t.tz), sidetrend.bucket_start(s.folded_through, t.bucket, t.tz),
+       s.first_bucket, s.folded_through, s.ready, coalesce(s.lambda, t.lambda, 0.95)
+FROM sidetrend.series s JOIN sidetrend.trackers t ON t.id = s.tracker_id
+WHERE s.folded_through IS NOT NULL AND s.first_bucket IS NOT NULL
+  AND ($1::text IS NULL OR t.name = $1) AND ($2::text IS NULL OR s.series_key = $2)
+ORDER BY t.name, s.series_key`
+
+// ListSeries lists the series that have folded buckets, optionally of one
+// tracker and one key, sorted by tracker name and key.
+func ListSeries(ctx context.Context, q querier, tracker, key *string) ([]SeriesRow, error) {
+	ts, err := LoadTrackers(ctx, q)
+	if err != nil {
+		return nil, err
+	}
+	rows, err := q.Query(ctx, listSeriesSQL, tracker, key)
+	if err != nil {
+		return nil, fmt.Errorf("list series: %w", err)
+	}
+	defer rows.Close()
+	var out []SeriesRow
+	for rows.Next() {
+		var r SeriesRow
+		var tid int32
+		if err := rows.Scan(&tid, &r.Key, &r.Points, &r.FirstBucket, &r.LastBucket, &r.FirstIndex, &r.LastIndex, &r.Ready, &r.Lambda); err != nil {
+			return nil, fmt.Errorf("list series: %w", err)
+		}
+		if r.Tracker = ts[int(tid)]; r.Tracker != nil {
+			out = append(out, r)
+		}
+	}
+	return out, rows.Err()
+}

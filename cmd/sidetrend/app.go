@@ -38,6 +38,11 @@ func newApp() *cli.App {
 			untrackCommand(),
 			runCommand(),
 			rebuildCommand(),
+			tuneCommand(),
+			statusCommand(),
+			plotCommand(),
+			forecastCommand(),
+			demoCommand(),
 			{
 				Name:  "version",
 				Usage: "print the version",

@@ -183,6 +183,7 @@ func rebuildCommand() *cli.Command {
 				}
 			}
 			s := pgsync.NewSyncer(pool, log)
+			s.Tune = true
 			if err := s.CatchUp(c.Context); err != nil {
 				return err
 			}

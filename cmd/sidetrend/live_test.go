@@ -1,0 +1,112 @@
+package main
+
+import (
+	"context"
+	"net"
+	"os"
+	"os/exec"
+	"strconv"
+	"testing"
+
+	"github.com/jackc/pgx/v5"
+	"gonum.org/v1/gonum/floats/scalar"
+
+	"github.com/sidetrend/sidetrend/estimator"
+	"github.com/sidetrend/sidetrend/pgsync"
+	"github.com/sidetrend/sidetrend/sqlwire"
+)
+
+// TestLiveEndpointOnStoredState serves the sidecar's real stored state
+// (tracked table, drained, folded) through the live endpoint, attaches it
+// with stock postgres_fdw via sql/foreign.sql, and reads a 400-bucket
+// forecast and a what-if lambda back through plain SQL.
+func TestLiveEndpointOnStoredState(t *testing.T) {
+	url, pool := salesDB(t)
+	ctx := context.Background()
+	const password = "tea-and-gears" // made up for the test
+	srv := sqlwire.New(sqlwire.Config{Listen: "127.0.0.1:0", Credentials: map[string]string{"sidetrend": password}},
+		liveSource{pool: pool}, nil)
+	if err := srv.Start(ctx); err != nil {
+		t.Fatal(err)
+	}
+	defer srv.Stop()
+	port := srv.Addr().(*net.TCPAddr).Port
+	psql, err := exec.LookPath("psql")
+	if err != nil {
+		t.Fatalf("psql is not on PATH: %v", err)
+	}
+	cmd := exec.Command(psql, "-X", "-q", "-d", url, "-v", "ON_ERROR_STOP=1", "-v", "host=127.0.0.1",
+		"-v", "port="+strconv.Itoa(port), "-v", "user=sidetrend", "-v", "password="+password, "-f", "../../sql/foreign.sql")
+	cmd.Env = append(os.Environ(), "PGCONNECT_TIMEOUT=20")
+	if out, err := cmd.CombinedOutput(); err != nil {
+		t.Fatalf("psql -f sql/foreign.sql: %v\n%s", err, out)
+	}
+
+	d, err := pgsync.LoadSeries(ctx, pool, "sales", "north")
+	if err != nil {
+		t.Fatal(err)
+	}
+	stored, err := estimator.DecodeFor(d.State, d.Spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	whatIf := d.Spec
+	whatIf.Lambda = 0.8
+	refit, err := estimator.Fit(whatIf, d.Values)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct {
+		name  string
+		sql   string
+		state *estimator.State
+	}{
+		{"stored state", `SELECT horizon, yhat, lo95, hi95 FROM sidetrend_live.forecast
+			WHERE tracker = 'sales' AND series_key = 'north' AND horizon <= 400 ORDER BY horizon`, stored},
+		{"what-if lambda 0.8", `SELECT horizon, yhat, lo95, hi95 FROM sidetrend_live.forecast
+			WHERE tracker = 'sales' AND series_key = 'north' AND lambda = 0.8 AND horizon <= 400 ORDER BY horizon`, refit},
+	} {
+		fc, err := c.state.Forecast(400)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows, err := pool.Query(ctx, c.sql)
+		if err != nil {
+			t.Fatalf("%s: %v", c.name, err)
+		}
+		type row struct {
+			H            int
+			Yhat, Lo, Hi float64
+		}
+		got, err := pgx.CollectRows(rows, pgx.RowToStructByPos[row])
+		if err != nil {
+			t.Fatalf("%s: %v", c.name, err)
+		}
+		if len(got) != 400 {
+			t.Fatalf("%s: %d rows, want 400", c.name, len(got))
+		}
+		for i, r := range got {
+			// Same estimator, same state: equal up to the float8 text
+			// round trip through postgres_fdw (exact with extra_float_digits 3).
+			for _, v := range [][2]float64{{r.Yhat, fc.Yhat[i]}, {r.Lo, fc.Lo95[i]}, {r.Hi, fc.Hi95[i]}} {
+				if !scalar.EqualWithinAbsOrRel(v[0], v[1], 0, 1e-15) {
+					t.Fatalf("%s: horizon %d: %v, want %v", c.name, r.H, v[0], v[1])
+				}
+			}
+		}
+	}
+	var n int64
+	if err := pool.QueryRow(ctx, `SELECT n_errors FROM sidetrend_live.backtest
+		WHERE tracker = 'sales' AND series_key = 'north' AND lambda = 0.9`).Scan(&n); err != nil {
+		t.Fatal(err)
+	}
+	spec := d.Spec
+	spec.Lambda = 0.9
+	es, err := estimator.Backtest(spec, d.Values)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n != es.N {
+		t.Errorf("backtest n_errors %d, want %d", n, es.N)
+	}
+}

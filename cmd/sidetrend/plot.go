@@ -1,0 +1,543 @@
+package main
+
+import (
+	"errors"
+	"fmt"
+	"image/color"
+	"math"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/urfave/cli/v2"
+	"gonum.org/v1/plot"
+	"gonum.org/v1/plot/plotter"
+	"gonum.org/v1/plot/vg"
+	"gonum.org/v1/plot/vg/draw"
+	"gonum.org/v1/plot/vg/vgimg"
+
+	"github.com/sidetrend/sidetrend/calendar"
+	"github.com/sidetrend/sidetrend/estimator"
+	"github.com/sidetrend/sidetrend/pgsync"
+)
+
+// chartDPI converts the pixel sizes of --width and --height to the points
+// gonum/plot draws in.
+const chartDPI = 96
+
+func plotCommand() *cli.Command {
+	return &cli.Command{
+		Name:      "plot",
+		Usage:     "draw one series as a PNG: history, one-step fitted values, forecast with 80 % and 95 % bands, and the slope",
+		UsageText: "sidetrend plot --tracker takings --series harbourside [--from 2025-01-01] --out chart.png",
+		Flags: []cli.Flag{
+			dbFlag,
+			&cli.StringFlag{Name: "tracker", Required: true, Usage: "tracker name"},
+			&cli.StringFlag{Name: "series", Usage: "series key (the key columns joined by '|'); empty for a tracker without keys"},
+			&cli.StringFlag{Name: "from", Usage: "first day shown, as 2006-01-02 or an RFC 3339 time (default: the last 90 buckets or 6 horizons, whichever is more)"},
+			&cli.StringFlag{Name: "out", Usage: "PNG file to write (default TRACKER-SERIES.png)"},
+			&cli.IntFlag{Name: "width", Value: 1100, Usage: "width in pixels"},
+			&cli.IntFlag{Name: "height", Value: 550, Usage: "height in pixels"},
+		},
+		Action: func(c *cli.Context) error {
+			var from time.Time
+			if s := c.String("from"); s != "" {
+				var err error
+				if from, err = parseFrom(s); err != nil {
+					return err
+				}
+			}
+			out := c.String("out")
+			if out == "" {
+				out = chartFileName(c.String("tracker"), c.String("series"))
+			}
+			pool, err := pgsync.Connect(c.Context, c.String("db"))
+			if err != nil {
+				return err
+			}
+			defer pool.Close()
+			d, err := pgsync.LoadSeries(c.Context, pool, c.String("tracker"), c.String("series"))
+			if errors.Is(err, pgsync.ErrNoSeries) {
+				return fmt.Errorf("%w: check the names with `sidetrend status` or SELECT tracker, series_key FROM sidetrend.series_status", err)
+			}
+			if err != nil {
+				return err
+			}
+			cd, err := buildChart(d, from)
+			if err != nil {
+				return err
+			}
+			if err := writeChart(cd, out, c.Int("width"), c.Int("height")); err != nil {
+				return err
+			}
+			fmt.Fprintln(c.App.Writer, "wrote", out)
+			return nil
+		},
+	}
+}
+
+// parseFrom reads --from as a date or an RFC 3339 time.
+func parseFrom(s string) (time.Time, error) {
+	if t, err := time.Parse(time.DateOnly, s); err == nil {
+		return t, nil
+	}
+	if t, err := time.Parse(time.RFC3339, s); err == nil {
+		return t, nil
+	}
+	return time.Time{}, fmt.Errorf("--from %q is not a date: write it as 2025-01-31 or 2025-01-31T08:00:00Z", s)
+}
+
+// chartFileName is TRACKER-SERIES.png with characters a file name should
+// not have replaced.
+func chartFileName(tracker, series string) string {
+	name := tracker
+	if series != "" {
+		name += "-" + series
+	}
+	name = strings.Map(func(r rune) rune {
+		if r == '/' || r == '\\' || r == '|' || r == ':' || r == ' ' || r < 32 {
+			return '_'
+		}
+		return r
+	}, name)
+	return name + ".png"
+}
+
+// chartData is everything a chart shows, in the tracker's time zone.
+type chartData struct {
+	Title    string
+	Subtitle string
+	YLabel   string
+	Loc      *time.Location
+	Step     calendar.Width
+
+	ObsT []time.Time // observed buckets (no gaps)
+	ObsY []float64
+	FitT []time.Time // one-step forecasts of the scored buckets
+	FitY []float64
+
+	FcT                          []time.Time
+	Yhat, Lo80, Hi80, Lo95, Hi95 []float64
+
+	// Trend is the slope drawn as a segment through the level at the newest
+	// bucket: (TrendT[0], TrendY[0]) to (TrendT[1], TrendY[1]).
+	TrendT     [2]time.Time
+	TrendY     [2]float64
+	TrendLabel string
+}
+
+// buildChart replays the series for its one-step fitted values and takes
+// the forecast and slope from the stored state. A zero from shows the last
+// max(90, 6 horizons) buckets.
+func buildChart(d *pgsync.SeriesData, from time.Time) (*chartData, error) {
+	t := d.Tracker
+	w, err := calendar.ParseWidth(t.Bucket)
+	if err != nil {
+		return nil, fmt.Errorf("tracker %q: bucket %q: %w", t.Name, t.Bucket, err)
+	}
+	cal, err := calendar.New(w, t.TZ)
+	if err != nil {
+		return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
+	}
+	cd := &chartData{Loc: cal.Location(), Step: w}
+	cd.Title = t.Name
+	if d.Key != "" {
+		cd.Title += ": " + d.Key
+	}
+	unit := bucketUnit(w)
+	cd.YLabel = fmt.Sprintf("%s per %s", t.Agg, unit)
+	if len(d.Values) == 0 {
+		return nil, fmt.Errorf("tracker %q series %q has no folded bucket yet: run the sidecar (`sidetrend run`) and try again", t.Name, d.Key)
+	}
+	if from.IsZero() {
+		n := max(90, 6*t.Horizon)
+		from = d.Starts[max(0, len(d.Starts)-n)]
+	}
+
+	// One-step fitted values: replay the values as the sidecar folded them.
+	replay, err := estimator.NewState(d.Spec)
+	if err != nil {
+		return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
+	}
+	for i, y := range d.Values {
+		if math.IsNaN(y) {
+			if err := replay.Skip(1); err != nil {
+				return nil, err
+			}
+			continue
+		}
+		step, err := replay.Observe(y)
+		if err != nil {
+			// The sidecar skips a bucket it cannot fold in; so does the replay.
+			if err := replay.Skip(1); err != nil {
+				return nil, err
+			}
+			continue
+		}
+		if d.Starts[i].Before(from) {
+			continue
+		}
+		cd.ObsT, cd.ObsY = append(cd.ObsT, d.Starts[i]), append(cd.ObsY, y)
+		if step.Scored {
+			cd.FitT, cd.FitY = append(cd.FitT, d.Starts[i]), append(cd.FitY, step.Yhat)
+		}
+	}
+	if len(cd.ObsT) == 0 {
+		return nil, fmt.Errorf("--from %s is after the newest folded bucket (%s): give an earlier date",
+			from.Format(time.DateOnly), d.Starts[len(d.Starts)-1].Format(time.DateOnly))
+	}
+
+	// Forecast and slope from the state the sidecar stored; the replay
+	// stands in when there is none or it cannot be read.
+	st := replay
+	if d.State != nil {
+		if stored, err := estimator.UnmarshalState(d.State); err == nil {
+			st = stored
+		}
+	}
+	asOf := cal.Start(d.LastIndex).Format(time.DateOnly)
+	if !st.Ready() {
+		cd.Subtitle = fmt.Sprintf("no forecast yet: the model is warming up (%d points in); as of %s", st.Count(), asOf)
+		return cd, nil
+	}
+	fc, err := st.Forecast(t.Horizon)
+	if err != nil {
+		return nil, fmt.Errorf("forecast %q/%q: %w", t.Name, d.Key, err)
+	}
+	for l := 1; l <= t.Horizon; l++ {
+		cd.FcT = append(cd.FcT, cal.Start(d.LastIndex+int64(l)))
+	}
+	cd.Yhat, cd.Lo80, cd.Hi80, cd.Lo95, cd.Hi95 = fc.Yhat, fc.Lo80, fc.Hi80, fc.Lo95, fc.Hi95
+	sl, err := st.Slope()
+	if err != nil {
+		return nil, fmt.Errorf("slope %q/%q: %w", t.Name, d.Key, err)
+	}
+	tstat := sl.T()
+	cd.TrendLabel = fmt.Sprintf("trend %+.3g/%s (t = %.1f)", sl.Slope, unit, tstat)
+	cd.Subtitle = fmt.Sprintf("as of %s: %s; %d-%s forecast with 80 %% and 95 %% prediction intervals",
+		asOf, cd.TrendLabel, t.Horizon, unit)
+	// The segment spans one horizon on each side of the newest bucket.
+	k := int64(t.Horizon)
+	cd.TrendT = [2]time.Time{cal.Start(d.LastIndex - k), cal.Start(d.LastIndex + k)}
+	cd.TrendY = [2]float64{sl.Level - sl.Slope*float64(k), sl.Level + sl.Slope*float64(k)}
+	return cd, nil
+}
+
+// bucketUnit names one bucket for labels: "day", "week", "month", "7 days".
+func bucketUnit(w calendar.Width) string {
+	switch {
+	case w.Months == 1:
+		return "month"
+	case w.Months == 3:
+		return "quarter"
+	case w.Months == 12:
+		return "year"
+	case w.Months > 0:
+		return fmt.Sprintf("%d months", w.Months)
+	case w.Days == 1:
+		return "day"
+	case w.Days == 7:
+		return "week"
+	case w.Days > 0:
+		return fmt.Sprintf("%d days", w.Days)
+	case w.Micros == 3600e6:
+		return "hour"
+	case w.Micros == 60e6:
+		return "minute"
+	default:
+		return time.Duration(w.Micros * 1000).String()
+	}
+}
+
+// Chart colours: dark grey points, a blue fitted line, an orange forecast
+// with its bands in lighter shades, a green trend segment.
+var (
+	colObserved = color.RGBA{R: 70, G: 70, B: 70, A: 255}
+	colFitted   = color.RGBA{R: 31, G: 119, B: 180, A: 255}
+	colForecast = color.RGBA{R: 214, G: 93, B: 14, A: 255}
+	colBand80   = color.RGBA{R: 243, G: 166, B: 110, A: 255}
+	colBand95   = color.RGBA{R: 251, G: 218, B: 190, A: 255}
+	colTrend    = color.RGBA{R: 44, G: 140, B: 60, A: 255}
+)
+
+// legendWidth is the strip right of the plot that holds the legend, so
+// that it never covers data.
+const legendWidth = 4.2 * vg.Centimeter
+
+// writeChart draws cd into a PNG of wpx by hpx pixels at path.
+func writeChart(cd *chartData, path string, wpx, hpx int) error {
+	if wpx < 400 || hpx < 250 || wpx > 10000 || hpx > 10000 {
+		return fmt.Errorf("chart size %dx%d is out of range: use a width of 400 to 10000 and a height of 250 to 10000 pixels", wpx, hpx)
+	}
+	p := plot.New()
+	p.Title.Text = cd.Title
+	if cd.Subtitle != "" {
+		p.Title.Text += "\n" + cd.Subtitle
+	}
+	p.Title.TextStyle.Font.Size = vg.Points(12)
+	p.Title.Padding = vg.Points(8)
+	p.X.Label.Text = "bucket start (" + cd.Loc.String() + ")"
+	p.Y.Label.Text = cd.YLabel
+	p.X.Tick.Marker = plot.TimeTicks{
+		Ticker: dateTicker{loc: cd.Loc, step: cd.Step},
+		Format: tickFormat(cd.Step),
+		Time:   func(x float64) time.Time { return time.Unix(int64(math.Round(x)), 0).In(cd.Loc) },
+	}
+	p.Y.Tick.Marker = valueTicker{}
+	p.Add(plotter.NewGrid())
+	legend := plot.NewLegend()
+	legend.Left, legend.Top = true, true
+	legend.TextStyle.Font.Size = vg.Points(10)
+	legend.Padding = vg.Points(4)
+	legend.ThumbnailWidth = vg.Points(22)
+
+	if len(cd.FcT) > 0 {
+		band := func(ts []time.Time, lo, hi []float64, c color.Color) (*plotter.Polygon, error) {
+			xy := make(plotter.XYs, 0, 2*len(ts))
+			for i := range ts {
+				xy = append(xy, plotter.XY{X: unix(ts[i]), Y: hi[i]})
+			}
+			for i := len(ts) - 1; i >= 0; i-- {
+				xy = append(xy, plotter.XY{X: unix(ts[i]), Y: lo[i]})
+			}
+			poly, err := plotter.NewPolygon(xy)
+			if err != nil {
+				return nil, err
+			}
+			poly.Color = c
+			poly.LineStyle.Width = 0
+			return poly, nil
+		}
+		b95, err := band(cd.FcT, cd.Lo95, cd.Hi95, colBand95)
+		if err != nil {
+			return fmt.Errorf("chart: 95 %% band: %w", err)
+		}
+		b80, err := band(cd.FcT, cd.Lo80, cd.Hi80, colBand80)
+		if err != nil {
+			return fmt.Errorf("chart: 80 %% band: %w", err)
+		}
+		p.Add(b95, b80)
+		legend.Add("95 % interval", b95)
+		legend.Add("80 % interval", b80)
+	}
+
+	obs, err := plotter.NewScatter(timeXYs(cd.ObsT, cd.ObsY))
+	if err != nil {
+		return fmt.Errorf("chart: observed points: %w", err)
+	}
+	obs.GlyphStyle.Color = colObserved
+	obs.GlyphStyle.Radius = vg.Points(1.8)
+	obs.GlyphStyle.Shape = draw.CircleGlyph{}
+	p.Add(obs)
+	legend.Add("observed", obs)
+
+	if len(cd.FitT) > 0 {
+		fit, err := plotter.NewLine(timeXYs(cd.FitT, cd.FitY))
+		if err != nil {
+			return fmt.Errorf("chart: fitted values: %w", err)
+		}
+		fit.Color, fit.Width = colFitted, vg.Points(1.2)
+		p.Add(fit)
+		legend.Add("one-step forecast", fit)
+	}
+	if len(cd.FcT) > 0 {
+		fc, err := plotter.NewLine(timeXYs(cd.FcT, cd.Yhat))
+		if err != nil {
+			return fmt.Errorf("chart: forecast: %w", err)
+		}
+		fc.Color, fc.Width = colForecast, vg.Points(2)
+		p.Add(fc)
+		legend.Add("forecast", fc)
+
+		tr, err := plotter.NewLine(timeXYs(cd.TrendT[:], cd.TrendY[:]))
+		if err != nil {
+			return fmt.Errorf("chart: trend: %w", err)
+		}
+		tr.Color, tr.Width = colTrend, vg.Points(2)
+		tr.Dashes = []vg.Length{vg.Points(6), vg.Points(3)}
+		p.Add(tr)
+		legend.Add("trend (level, slope)", tr)
+	}
+	// Leave a little room right of the last forecast.
+	p.X.Max += (p.X.Max - p.X.Min) * 0.01
+
+	w := vg.Length(wpx) * vg.Inch / chartDPI
+	h := vg.Length(hpx) * vg.Inch / chartDPI
+	img := vgimg.NewWith(vgimg.UseWH(w, h), vgimg.UseDPI(chartDPI), vgimg.UseBackgroundColor(color.White))
+	dc := draw.New(img)
+	margin := vg.Points(10)
+	p.Draw(draw.Crop(dc, margin, -legendWidth, margin, -margin))
+	// The legend goes in the strip to the right, level with the plot's top
+	// edge below the title.
+	titleH := p.Title.TextStyle.Rectangle(p.Title.Text).Size().Y + p.Title.Padding
+	legendArea := draw.Crop(dc, w-legendWidth+vg.Points(6), -margin, 0, -margin-titleH)
+	legend.Draw(legendArea)
+
+	if dir := filepath.Dir(path); dir != "" {
+		if err := os.MkdirAll(dir, 0o755); err != nil {
+			return fmt.Errorf("chart: %w", err)
+		}
+	}
+	f, err := os.Create(path)
+	if err != nil {
+		return fmt.Errorf("chart: %w", err)
+	}
+	if _, err := (vgimg.PngCanvas{Canvas: img}).WriteTo(f); err != nil {
+		f.Close()
+		return fmt.Errorf("chart: write %s: %w", path, err)
+	}
+	return f.Close()
+}
+
+func unix(t time.Time) float64 { return float64(t.Unix()) }
+
+func timeXYs(ts []time.Time, ys []float64) plotter.XYs {
+	xy := make(plotter.XYs, 0, len(ts))
+	for i := range ts {
+		if math.IsNaN(ys[i]) || math.IsInf(ys[i], 0) {
+			continue
+		}
+		xy = append(xy, plotter.XY{X: unix(ts[i]), Y: ys[i]})
+	}
+	return xy
+}
+
+// tickFormat is the date layout of the x axis labels for a bucket width.
+func tickFormat(w calendar.Width) string {
+	switch {
+	case w.Months > 0:
+		return "2006-01"
+	case w.Days > 0:
+		return "2006-01-02"
+	case w.Micros >= 3600e6:
+		return "01-02 15:04"
+	default:
+		return "15:04"
+	}
+}
+
+// dateTicker puts major ticks on round calendar boundaries in the tracker's
+// zone (days, weeks starting Monday, months), about 5 to 10 of them, with
+// minor ticks between.
+type dateTicker struct {
+	loc  *time.Location
+	step calendar.Width
+}
+
+func (d dateTicker) Ticks(min, max float64) []plot.Tick {
+	lo := time.Unix(int64(math.Floor(min)), 0).In(d.loc)
+	hi := time.Unix(int64(math.Ceil(max)), 0).In(d.loc)
+	span := hi.Sub(lo)
+	type cand struct {
+		major, minor func(time.Time) time.Time // next boundary after t
+		first        func(time.Time) time.Time // first boundary at or after t
+		n            float64                   // approximate major ticks over the span
+	}
+	day := func(n int) cand {
+		return cand{
+			major: func(t time.Time) time.Time { return t.AddDate(0, 0, n) },
+			minor: func(t time.Time) time.Time { return t.AddDate(0, 0, 1) },
+			first: func(t time.Time) time.Time {
+				m := midnight(t)
+				if m.Before(t) {
+					m = m.AddDate(0, 0, 1)
+				}
+				if n == 7 || n == 14 {
+					for m.Weekday() != time.Monday {
+						m = m.AddDate(0, 0, 1)
+					}
+				}
+				return m
+			},
+			n: span.Hours() / 24 / float64(n),
+		}
+	}
+	month := func(n int) cand {
+		return cand{
+			major: func(t time.Time) time.Time { return t.AddDate(0, n, 0) },
+			minor: func(t time.Time) time.Time {
+				if n == 1 {
+					return t.AddDate(0, 0, 7)
+				}
+				return t.AddDate(0, 1, 0)
+			},
+			first: func(t time.Time) time.Time {
+				m := time.Date(t.Year(), t.Month(), 1, 0, 0, 0, 0, t.Location())
+				if m.Before(t) {
+					m = m.AddDate(0, 1, 0)
+				}
+				for (int(m.Month())-1)%n != 0 {
+					m = m.AddDate(0, 1, 0)
+				}
+				return m
+			},
+			n: span.Hours() / 24 / 30.4 / float64(n),
+		}
+	}
+	var cands []cand
+	if d.step.Micros > 0 && span < 4*24*time.Hour {
+		// Sub-day buckets over a short span: the default ticks are fine.
+		return plot.DefaultTicks{}.Ticks(min, max)
+	}
+	if d.step.Months == 0 {
+		cands = append(cands, day(1), day(2), day(7), day(14))
+	}
+	cands = append(cands, month(1), month(2), month(3), month(6), month(12))
+	c := cands[len(cands)-1]
+	for _, x := range cands {
+		if x.n <= 10 {
+			c = x
+			break
+		}
+	}
+	var ticks []plot.Tick
+	for t := c.first(lo); !t.After(hi); t = c.major(t) {
+		ticks = append(ticks, plot.Tick{Value: float64(t.Unix()), Label: "major"})
+		next := c.major(t)
+		for m := c.minor(t); m.Before(next) && !m.After(hi); m = c.minor(m) {
+			ticks = append(ticks, plot.Tick{Value: float64(m.Unix())})
+		}
+	}
+	if len(ticks) < 2 {
+		return plot.DefaultTicks{}.Ticks(min, max)
+	}
+	return ticks
+}
+
+func midnight(t time.Time) time.Time {
+	return time.Date(t.Year(), t.Month(), t.Day(), 0, 0, 0, 0, t.Location())
+}
+
+// valueTicker puts about six labelled ticks on round values (1, 2, 2.5 or
+// 5 times a power of ten) with a minor tick between each two.
+type valueTicker struct{}
+
+func (valueTicker) Ticks(lo, hi float64) []plot.Tick {
+	if !(hi > lo) {
+		return plot.DefaultTicks{}.Ticks(lo, hi)
+	}
+	raw := (hi - lo) / 6
+	mag := math.Pow(10, math.Floor(math.Log10(raw)))
+	step := 10 * mag
+	for _, m := range []float64{1, 2, 2.5, 5} {
+		if m*mag >= raw {
+			step = m * mag
+			break
+		}
+	}
+	// As many decimals as the step needs: 0 for 250, 1 for 2.5, 2 for 0.25.
+	decimals := 0
+	for d := step; decimals < 8 && math.Abs(d-math.Round(d)) > 1e-9*d; d *= 10 {
+		decimals++
+	}
+	var ticks []plot.Tick
+	for v := math.Ceil(lo/step) * step; v <= hi+step*1e-9; v += step {
+		ticks = append(ticks, plot.Tick{Value: v, Label: strconv.FormatFloat(v, 'f', decimals, 64)})
+		if half := v + step/2; half <= hi {
+			ticks = append(ticks, plot.Tick{Value: half})
+		}
+	}
+	return ticks
+}

@@ -1,0 +1,204 @@
+package estimator
+
+import (
+	"bytes"
+	"encoding/binary"
+	"math"
+	"math/rand/v2"
+	"testing"
+)
+
+// Run the fuzzers with, for example,
+//
+//	go test -run '^$' -fuzz FuzzUnmarshalState -fuzztime 60s ./estimator/
+//	go test -run '^$' -fuzz FuzzUpdate -fuzztime 60s ./estimator/
+//
+// Without -fuzz they run once over their seed corpus as ordinary tests.
+
+// FuzzUnmarshalState: arbitrary bytes never panic; they decode to an error
+// or to a state that re-encodes to the same bytes. Each input is tried
+// twice, as given and with its checksum made right, so that the fuzzer
+// reaches the field checks behind the CRC.
+func FuzzUnmarshalState(f *testing.F) {
+	rng := rand.New(rand.NewPCG(1, 1))
+	for i := 0; i < 16; i++ {
+		f.Add(mustMarshal(f, randomState(f, rng)))
+	}
+	f.Add([]byte{})
+	f.Add([]byte("stS"))
+	f.Add([]byte("stS\x01\x00\x00\x00\x00\x00\x00"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		for _, b := range [][]byte{data, withCRC(data)} {
+			st, err := UnmarshalState(b)
+			if err != nil {
+				continue
+			}
+			again, err := st.MarshalBinary()
+			if err != nil {
+				t.Fatalf("re-encoding a decoded state: %v", err)
+			}
+			if !bytes.Equal(again, b) {
+				t.Fatalf("decoded state re-encodes differently:\n in  %x\n out %x", b, again)
+			}
+			// A decoded state must survive every query and update.
+			_ = st.Ready()
+			_, _ = st.Theta()
+			_, _ = st.Forecast(12)
+			_, _ = st.Slope()
+			_ = st.Errors()
+			_, _ = st.Observe(1)
+			_ = st.Skip(3)
+		}
+	})
+}
+
+// updateSpecs are the models FuzzUpdate picks from with its first byte.
+var updateSpecs = []Spec{
+	{Degree: 0, Lambda: 0.9},
+	{Degree: 1, Lambda: 0.95},
+	{Degree: 1, Lambda: 1},
+	{Degree: 2, Lambda: 0.99, BurnIn: 2},
+	{Degree: 3, Lambda: 0.6},
+	{Degree: 1, Period: 7, Harmonics: 2, Lambda: 0.97},
+	{Degree: 0, Period: 4, Harmonics: 2, Lambda: 0.8},
+	{Degree: 2, Period: 365.25 / 7, Harmonics: 1, Lambda: 0.999},
+}
+
+// fuzzOps encodes a script for FuzzUpdate: a spec byte, then 9 bytes per
+// operation: a kind byte and 8 bytes of float64 bits. Kinds 0-5 observe the
+// float, 6 skips float-bits mod 16 buckets, 7 skips (int64 of the bits),
+// which may be negative or huge.
+func fuzzOps(spec byte, ops ...any) []byte {
+	b := []byte{spec}
+	for _, op := range ops {
+		switch v := op.(type) {
+		case float64:
+			b = append(b, 0)
+			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+		case int:
+			b = append(b, 7)
+			b = binary.LittleEndian.AppendUint64(b, uint64(int64(v)))
+		}
+	}
+	return b
+}
+
+// FuzzUpdate: arbitrary values (NaN, Inf, 1e300, -0, subnormals) and gap
+// lengths never panic; a failed update is an error that leaves the state
+// exactly as it was (same encoding); and a Ready state's forecasts hold no
+// NaN or Inf, except the interval values (SE, bounds, sigma, quantiles)
+// while T - p <= 0 gives no degrees of freedom, and the bounds and quantiles
+// while T - p is too small for a finite t quantile.
+func FuzzUpdate(f *testing.F) {
+	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 1e300, -1e300, math.Copysign(0, -1),
+		5e-324, -2.2250738585072014e-308, math.MaxFloat64, 1e154, 1.4e154, -1e-300, 1}
+	for s := range updateSpecs {
+		var ops []any
+		for i := 0; i < 30; i++ {
+			ops = append(ops, 100+float64(i%5))
+		}
+		for i, x := range specials {
+			ops = append(ops, x, 100.0, i*1000-3000)
+		}
+		f.Add(fuzzOps(byte(s), ops...))
+	}
+	f.Add(fuzzOps(1, 1.0, 2.0, 3.0, 1<<62, 4.0, 5.0))
+	f.Add(fuzzOps(2, 1e150, -1e150, 1e150, -1e150, 1e150, 3, 1e150))
+	f.Add(fuzzOps(3, 5e-324, 5e-324, 1e-320, 0.0, 5e-324, 1e-310))
+	// Found by the fuzzer: T - p = 0.0057 after a long gap, where the 95 %
+	// t quantile overflowed to +Inf in a Ready state.
+	f.Add([]byte("000000000070\x00\x00\x00\x00\x00\x00\x000000000000"))
+	// Found by the fuzzer: two huge skips overflowed the int64 bucket
+	// count, and the state no longer decoded.
+	f.Add([]byte("070000000X700000000"))
+	// Found by the fuzzer: S from its definition, syy - h^T theta, was
+	// Inf - Inf = NaN for values near 1e154 (now a sum of squares).
+	f.Add([]byte("70000000\xe7_000000000000000000000000000000000000"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		if len(data) == 0 {
+			return
+		}
+		st, err := NewState(updateSpecs[int(data[0])%len(updateSpecs)])
+		if err != nil {
+			t.Fatal(err)
+		}
+		data = data[1:]
+		for len(data) >= 9 {
+			kind, bits := data[0], binary.LittleEndian.Uint64(data[1:9])
+			data = data[9:]
+			before := mustMarshal(t, st)
+			var err error
+			switch {
+			case kind%8 < 6:
+				_, err = st.Observe(math.Float64frombits(bits))
+			case kind%8 == 6:
+				err = st.Skip(int(bits % 16))
+			default:
+				err = st.Skip(int(int64(bits)))
+			}
+			after := mustMarshal(t, st)
+			if err != nil && !bytes.Equal(before, after) {
+				t.Fatalf("failed update (%v) changed the state", err)
+			}
+			if dec, err := UnmarshalState(after); err != nil {
+				t.Fatalf("state after an update does not decode: %v", err)
+			} else if !bytes.Equal(mustMarshal(t, dec), after) {
+				t.Fatal("state after an update does not round-trip")
+			}
+			checkFinite(t, st)
+		}
+	})
+}
+
+// checkFinite fails when a Ready state answers with NaN or Inf where a
+// number is due.
+func checkFinite(t *testing.T, st *State) {
+	t.Helper()
+	if !st.Ready() {
+		return
+	}
+	fc, err := st.Forecast(12)
+	if err != nil {
+		t.Fatalf("Ready state: Forecast: %v", err)
+	}
+	bad := func(what string, xs ...float64) {
+		t.Helper()
+		for i, x := range xs {
+			if !finite(x) {
+				t.Fatalf("Ready state (T=%v, p=%d, S=%v, rcond=%v): %s[%d] = %v", st.Weight(), st.Params(), st.RSS(), st.RCond(), what, i, x)
+			}
+		}
+	}
+	bad("Yhat", fc.Yhat...)
+	bad("CumYhat", fc.CumYhat...)
+	th, err := st.Theta()
+	if err != nil {
+		t.Fatalf("Ready state: Theta: %v", err)
+	}
+	bad("theta", th...)
+	sl, err := st.Slope()
+	if err != nil {
+		t.Fatalf("Ready state: Slope: %v", err)
+	}
+	bad("slope", sl.Level, sl.Slope)
+	if fc.DF <= 0 {
+		return
+	}
+	bad("Sigma", fc.Sigma)
+	bad("SE", fc.SE...)
+	bad("CumSE", fc.CumSE...)
+	if st.Spec().Degree >= 1 {
+		bad("slope SE", sl.SE)
+	}
+	if math.IsNaN(fc.T95) && math.IsNaN(fc.T80) && fc.DF < 0.01 {
+		// No interval: the t quantile overflows below df = 0.0065.
+		return
+	}
+	bad("T80, T95", fc.T80, fc.T95)
+	bad("Lo80", fc.Lo80...)
+	bad("Hi80", fc.Hi80...)
+	bad("Lo95", fc.Lo95...)
+	bad("Hi95", fc.Hi95...)
+	bad("CumLo95", fc.CumLo95...)
+	bad("CumHi95", fc.CumHi95...)
+}

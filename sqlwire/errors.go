@@ -1,0 +1,105 @@
+package sqlwire
+
+import (
+	"errors"
+	"fmt"
+)
+
+// SQLSTATE codes the endpoint sends (Postgres' errcodes.txt).
+const (
+	codeSyntax              = "42601" // syntax_error
+	codeFeatureNotSupported = "0A000" // feature_not_supported
+	codeReadOnly            = "25006" // read_only_sql_transaction
+	codeUndefinedTable      = "42P01" // undefined_table
+	codeUndefinedColumn     = "42703" // undefined_column
+	codeUndefinedFunction   = "42883" // undefined_function
+	codeUndefinedObject     = "42704" // undefined_object (unknown parameter)
+	codeDatatypeMismatch    = "42804" // datatype_mismatch
+	codeCannotCoerce        = "42846" // cannot_coerce
+	codeGrouping            = "42803" // grouping_error
+	codeInvalidText         = "22P02" // invalid_text_representation
+	codeInvalidDatetime     = "22007" // invalid_datetime_format
+	codeOutOfRange          = "22003" // numeric_value_out_of_range
+	codeDivisionByZero      = "22012" // division_by_zero
+	codeInvalidParameter    = "22023" // invalid_parameter_value
+	codeProtocolViolation   = "08P01" // protocol_violation
+	codeInvalidPassword     = "28P01" // invalid_password
+	codeInvalidAuth         = "28000" // invalid_authorization_specification
+	codeUnknownDatabase     = "3D000" // invalid_catalog_name
+	codeTooManyConnections  = "53300" // too_many_connections
+	codeQueryCanceled       = "57014" // query_canceled
+	codeAdminShutdown       = "57P01" // admin_shutdown
+	codeInFailedTx          = "25P02" // in_failed_sql_transaction
+	codeNoActiveTx          = "25P01" // no_active_sql_transaction
+	codeActiveTx            = "25001" // active_sql_transaction
+	codeInvalidCursor       = "34000" // invalid_cursor_name
+	codeDuplicateCursor     = "42P03" // duplicate_cursor
+	codeCursorState         = "24000" // invalid_cursor_state
+	codeObjectState         = "55000" // object_not_in_prerequisite_state
+	codeUnknownStatement    = "26000" // invalid_sql_statement_name
+	codeDuplicateStatement  = "42P05" // duplicate_prepared_statement
+	codeSavepoint           = "3B001" // invalid_savepoint_specification
+	codeInternal            = "XX000" // internal_error
+)
+
+// sqlError is an error that goes to the client as an ErrorResponse with
+// its SQLSTATE. Message says what went wrong, Hint what to change.
+type sqlError struct {
+	Code     string
+	Severity string // ERROR unless FATAL
+	Message  string
+	Detail   string
+	Hint     string
+	Position int // 1-based character position in the statement, 0 if none
+}
+
+func (e *sqlError) Error() string {
+	s := e.Message
+	if e.Hint != "" {
+		s += " (" + e.Hint + ")"
+	}
+	return s
+}
+
+func errorf(code, format string, args ...any) *sqlError {
+	return &sqlError{Code: code, Severity: "ERROR", Message: fmt.Sprintf(format, args...)}
+}
+
+func (e *sqlError) withHint(format string, args ...any) *sqlError {
+	e.Hint = fmt.Sprintf(format, args...)
+	return e
+}
+
+func (e *sqlError) withDetail(format string, args ...any) *sqlError {
+	e.Detail = fmt.Sprintf(format, args...)
+	return e
+}
+
+func fatalf(code, format string, args ...any) *sqlError {
+	e := errorf(code, format, args...)
+	e.Severity = "FATAL"
+	return e
+}
+
+// syntaxErrorAt is a 42601 error at byte offset pos of the statement.
+func syntaxErrorAt(pos int, format string, args ...any) *sqlError {
+	e := errorf(codeSyntax, format, args...)
+	e.Position = pos + 1
+	return e
+}
+
+// notSupported is the 0A000 refusal of something the endpoint understands
+// but will not run; what is named in the message.
+func notSupported(format string, args ...any) *sqlError {
+	return errorf(codeFeatureNotSupported, format, args...)
+}
+
+// asSQLError turns any error into one with a SQLSTATE: sqlErrors pass
+// through, everything else is an internal error.
+func asSQLError(err error) *sqlError {
+	var se *sqlError
+	if errors.As(err, &se) {
+		return se
+	}
+	return errorf(codeInternal, "%v", err)
+}

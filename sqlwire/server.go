@@ -1,0 +1,363 @@
+// Package sqlwire is sidetrend's live endpoint: a server of the Postgres
+// wire protocol that stock postgres_fdw attaches to, serving forecasts for
+// any horizon, what-if refits with another forgetting factor and backtests,
+// all computed on demand from the sidecar's stored state.
+//
+// It speaks the subset of the protocol and of SQL that postgres_fdw sends
+// (session SETs, transactions and savepoints, cursors over the extended
+// protocol, the deparsed SELECTs) and authenticates with SCRAM-SHA-256, so
+// non-superusers can use it through a user mapping with a password. Every
+// pushed-down condition is either applied exactly or refused with an error
+// that names it: Postgres does not check pushed-down conditions again.
+package sqlwire
+
+import (
+	"context"
+	"crypto/hmac"
+	"crypto/rand"
+	"crypto/sha256"
+	"crypto/subtle"
+	"crypto/tls"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"sync"
+	"sync/atomic"
+	"time"
+)
+
+// Config configures the endpoint.
+type Config struct {
+	// Listen is the TCP address to listen on, such as 127.0.0.1:5488.
+	Listen string
+	// TLSCertFile and TLSKeyFile, when both set, enable TLS: SSLRequest is
+	// answered 'S'. Otherwise it is answered 'N' and connections are plain.
+	TLSCertFile, TLSKeyFile string
+	// Credentials maps user names to passwords, checked with SCRAM-SHA-256.
+	Credentials map[string]string
+	// Database is the only database name clients may connect to;
+	// "sidetrend" when empty.
+	Database string
+	// MaxConnections bounds concurrent sessions; 200 when zero.
+	MaxConnections int
+	// StartupTimeout bounds the time from connect to authenticated; 10 s
+	// when zero.
+	StartupTimeout time.Duration
+}
+
+// DefaultDatabase is the database name clients connect to.
+const DefaultDatabase = "sidetrend"
+
+// Server is the live endpoint.
+type Server struct {
+	cfg Config
+	src Source
+	log *slog.Logger
+
+	mu       sync.Mutex
+	ln       net.Listener
+	tls      *tls.Config
+	secrets  map[string]*scramSecret
+	fakeKey  []byte // keys fake SCRAM salts for unknown users
+	sessions map[uint32]*session
+	conns    map[net.Conn]struct{}
+	nextPID  uint32
+	started  bool
+	stopped  bool
+	ctx      context.Context
+	cancel   context.CancelCauseFunc
+	wg       sync.WaitGroup
+	stopOnce sync.Once
+
+	cancels atomic.Int64 // cancel requests that stopped a running statement
+}
+
+// New returns a server for cfg that computes its tables from src. Start
+// listens.
+func New(cfg Config, src Source, log *slog.Logger) *Server {
+	if log == nil {
+		log = slog.New(slog.DiscardHandler)
+	}
+	if cfg.Database == "" {
+		cfg.Database = DefaultDatabase
+	}
+	if cfg.MaxConnections == 0 {
+		cfg.MaxConnections = 200
+	}
+	if cfg.StartupTimeout == 0 {
+		cfg.StartupTimeout = 10 * time.Second
+	}
+	return &Server{cfg: cfg, src: src, log: log,
+		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{}}
+}
+
+var errShutdown = errors.New("the sidetrend endpoint is shutting down")
+
+// errCancelRequest is the cause of a statement context cancelled by a
+// client's CancelRequest.
+var errCancelRequest = errors.New("cancel request")
+
+// errStatementTimeout is the cause of a statement that ran past
+// statement_timeout.
+var errStatementTimeout = errors.New("statement timeout")
+
+// Start checks the configuration, derives the SCRAM secrets and starts
+// listening. It fails fast on a bad address, unreadable TLS files or
+// missing credentials. The server runs until Stop or until ctx is done.
+func (s *Server) Start(ctx context.Context) error {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.started {
+		return errors.New("sqlwire: the server is already started")
+	}
+	if s.src == nil {
+		return errors.New("sqlwire: no source: the endpoint needs the sidecar's state to serve")
+	}
+	if s.cfg.Listen == "" {
+		return errors.New("sqlwire: no listen address: set one such as 127.0.0.1:5488")
+	}
+	if len(s.cfg.Credentials) == 0 {
+		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
+	}
+	secrets := map[string]*scramSecret{}
+	for user, pw := range s.cfg.Credentials {
+		if user == "" {
+			return errors.New("sqlwire: a credential has an empty user name: write user:password")
+		}
+		if pw == "" {
+			return fmt.Errorf("sqlwire: user %q has an empty password: postgres_fdw requires a password for non-superusers", user)
+		}
+		for i := 0; i < len(pw); i++ {
+			if pw[i] >= 0x80 {
+				return fmt.Errorf("sqlwire: the password of user %q has non-ASCII characters: use ASCII, which SCRAM clients send unchanged", user)
+			}
+		}
+		salt := make([]byte, scramSaltLen)
+		if _, err := rand.Read(salt); err != nil {
+			return fmt.Errorf("sqlwire: SCRAM salt: %w", err)
+		}
+		sec, err := newScramSecret(pw, salt, scramIterations)
+		if err != nil {
+			return fmt.Errorf("sqlwire: %w", err)
+		}
+		secrets[user] = sec
+	}
+	s.fakeKey = make([]byte, 32)
+	if _, err := rand.Read(s.fakeKey); err != nil {
+		return fmt.Errorf("sqlwire: %w", err)
+	}
+	switch {
+	case s.cfg.TLSCertFile != "" && s.cfg.TLSKeyFile != "":
+		cert, err := tls.LoadX509KeyPair(s.cfg.TLSCertFile, s.cfg.TLSKeyFile)
+		if err != nil {
+			return fmt.Errorf("sqlwire: load TLS certificate %s and key %s: %w", s.cfg.TLSCertFile, s.cfg.TLSKeyFile, err)
+		}
+		s.tls = &tls.Config{Certificates: []tls.Certificate{cert}, MinVersion: tls.VersionTLS12}
+	case s.cfg.TLSCertFile != "" || s.cfg.TLSKeyFile != "":
+		return errors.New("sqlwire: TLS needs both a certificate file and a key file")
+	}
+	var lc net.ListenConfig
+	ln, err := lc.Listen(ctx, "tcp", s.cfg.Listen)
+	if err != nil {
+		return fmt.Errorf("sqlwire: listen on %s: %w", s.cfg.Listen, err)
+	}
+	var pid [4]byte
+	if _, err := rand.Read(pid[:]); err != nil {
+		ln.Close()
+		return fmt.Errorf("sqlwire: %w", err)
+	}
+	s.nextPID = 1000 + binary.BigEndian.Uint32(pid[:])%1_000_000
+	s.secrets = secrets
+	s.ln = ln
+	s.started = true
+	s.ctx, s.cancel = context.WithCancelCause(context.WithoutCancel(ctx))
+	s.wg.Add(1)
+	go s.acceptLoop()
+	if ctx.Done() != nil {
+		go func() {
+			select {
+			case <-ctx.Done():
+				s.Stop()
+			case <-s.ctx.Done():
+			}
+		}()
+	}
+	s.log.Info("sql endpoint listening", "addr", ln.Addr().String(), "tls", s.tls != nil)
+	return nil
+}
+
+// Addr is the address the server listens on (nil before Start).
+func (s *Server) Addr() net.Addr {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.ln == nil {
+		return nil
+	}
+	return s.ln.Addr()
+}
+
+// Stop stops accepting connections, cancels running statements, ends every
+// session with FATAL 57P01 and waits for them to close. It is idempotent
+// and safe to call before Start.
+func (s *Server) Stop() {
+	s.stopOnce.Do(func() {
+		s.mu.Lock()
+		s.stopped = true
+		if s.ln != nil {
+			s.ln.Close()
+		}
+		if s.cancel != nil {
+			s.cancel(errShutdown)
+		}
+		// Wake sessions blocked reading: they see the stop and say goodbye.
+		now := time.Now()
+		for c := range s.conns {
+			c.SetReadDeadline(now)
+		}
+		s.mu.Unlock()
+		s.wg.Wait()
+		s.log.Info("sql endpoint stopped")
+	})
+}
+
+// Sessions is the number of authenticated sessions open now.
+func (s *Server) Sessions() int {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return len(s.sessions)
+}
+
+// CancelsHonored is the number of cancel requests that stopped a running
+// statement since Start.
+func (s *Server) CancelsHonored() int64 { return s.cancels.Load() }
+
+func (s *Server) acceptLoop() {
+	defer s.wg.Done()
+	var delay time.Duration
+	for {
+		conn, err := s.ln.Accept()
+		if err != nil {
+			s.mu.Lock()
+			stopped := s.stopped
+			s.mu.Unlock()
+			if stopped || errors.Is(err, net.ErrClosed) {
+				return
+			}
+			// Temporary failures (too many open files): back off, retry.
+			delay = min(max(2*delay, 5*time.Millisecond), time.Second)
+			s.log.Warn("sql endpoint accept failed", "err", err, "retry_in", delay)
+			time.Sleep(delay)
+			continue
+		}
+		delay = 0
+		if !s.track(conn) {
+			conn.Close()
+			continue
+		}
+		s.wg.Add(1)
+		go func() {
+			defer s.wg.Done()
+			defer s.untrack(conn)
+			s.serveConn(conn)
+		}()
+	}
+}
+
+// track registers a connection so that Stop can wake it; false when the
+// server is stopping.
+func (s *Server) track(c net.Conn) bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.stopped {
+		return false
+	}
+	s.conns[c] = struct{}{}
+	return true
+}
+
+func (s *Server) untrack(c net.Conn) {
+	s.mu.Lock()
+	delete(s.conns, c)
+	s.mu.Unlock()
+	c.Close()
+}
+
+// retrack replaces a tracked connection by its TLS wrapper.
+func (s *Server) retrack(old, c net.Conn) bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	delete(s.conns, old)
+	if s.stopped {
+		return false
+	}
+	s.conns[c] = struct{}{}
+	return true
+}
+
+// register gives an authenticated session its process id and secret key;
+// false when the server is stopping or full.
+func (s *Server) register(sess *session) (ok bool, full bool) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.stopped {
+		return false, false
+	}
+	if len(s.sessions) >= s.cfg.MaxConnections {
+		return false, true
+	}
+	for {
+		s.nextPID++
+		if s.nextPID == 0 {
+			s.nextPID = 1000
+		}
+		if _, taken := s.sessions[s.nextPID]; !taken {
+			break
+		}
+	}
+	sess.pid = s.nextPID
+	s.sessions[sess.pid] = sess
+	// The connection must not time out now that startup is over, unless
+	// Stop has already set a deadline (it holds mu while doing so).
+	sess.conn.SetDeadline(time.Time{})
+	return true, false
+}
+
+func (s *Server) unregister(sess *session) {
+	s.mu.Lock()
+	if s.sessions[sess.pid] == sess {
+		delete(s.sessions, sess.pid)
+	}
+	s.mu.Unlock()
+}
+
+// cancelRequest handles a CancelRequest: the matching session's running
+// statement, if any, is cancelled. As in Postgres nothing is sent back.
+func (s *Server) cancelRequest(pid uint32, secret []byte) {
+	s.mu.Lock()
+	sess := s.sessions[pid]
+	s.mu.Unlock()
+	if sess == nil || subtle.ConstantTimeCompare(sess.secret[:], secret) != 1 {
+		s.log.Warn("sql endpoint cancel request for an unknown session", "pid", pid)
+		return
+	}
+	if sess.cancelStatement(errCancelRequest) {
+		s.cancels.Add(1)
+		s.log.Info("sql endpoint statement cancelled by request", "pid", pid, "user", sess.user)
+	}
+}
+
+// secretFor returns the SCRAM secret of user, or a fake one (stable per
+// user name, never matching) so that unknown users go through the same
+// exchange and fail at the same step as a wrong password.
+func (s *Server) secretFor(user string) (*scramSecret, bool) {
+	if sec, ok := s.secrets[user]; ok {
+		return sec, true
+	}
+	m := hmac.New(sha256.New, s.fakeKey)
+	m.Write([]byte(user))
+	sum := m.Sum(nil)
+	return &scramSecret{salt: sum[:scramSaltLen], iters: scramIterations,
+		storedKey: make([]byte, sha256.Size), serverKey: make([]byte, sha256.Size)}, false
+}
