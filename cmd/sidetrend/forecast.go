@@ -1,0 +1,538 @@
+package main
+
+import (
+	"encoding/csv"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"slices"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"github.com/sidetrend/sidetrend/calendar"
+	"github.com/sidetrend/sidetrend/estimator"
+	"github.com/urfave/cli/v2"
+)
+
+// forecastCaution ends the table output of `sidetrend forecast`.
+const forecastCaution = "Caution: forecasts and intervals are estimates under model assumptions; decisions stay with people."
+
+// forecastColumns are the columns of the csv and json output (contract).
+var forecastColumns = []string{"series_key", "horizon", "period_start", "yhat", "lo80", "hi80",
+	"lo95", "hi95", "cum_yhat", "cum_lo95", "cum_hi95", "as_of"}
+
+// wallLayouts are the time forms without a zone that the CSV may use; they
+// are wall-clock time in --tz. Go's parser takes a fractional second after
+// the seconds even though the layout has none.
+var wallLayouts = []string{"2006-01-02 15:04:05", "2006-01-02T15:04:05", "2006-01-02"}
+
+func forecastCommand() *cli.Command {
+	return &cli.Command{
+		Name:  "forecast",
+		Usage: "forecast the series in a CSV file, without a database",
+		UsageText: "sidetrend forecast --csv examples/bakery.csv --time-col date --key-col branch --value-col takings --period 7 --harmonics 2\n" +
+			"sidetrend forecast --csv sales.csv --bucket '1 month' --agg sum --format csv",
+		Description: "Reads a CSV file with a header: a time column, a value column and an optional key column\n" +
+			"naming the series. Times are RFC 3339 (2026-03-01T09:30:00+01:00), or '2006-01-02 15:04:05' or\n" +
+			"'2006-01-02', which are wall-clock time in --tz. Rows are bucketed by --bucket in --tz, each\n" +
+			"series is fitted by discounted least squares, and the forecasts for the next --horizon buckets\n" +
+			"are printed. An empty bucket between two observed ones counts as zero or as a gap (--empty).",
+		Flags: []cli.Flag{
+			&cli.StringFlag{Name: "csv", Required: true, Usage: "CSV file with a header row; - reads standard input"},
+			&cli.StringFlag{Name: "time-col", Value: "time", Usage: "name of the time column"},
+			&cli.StringFlag{Name: "value-col", Value: "value", Usage: "name of the value column (not needed for --agg count)"},
+			&cli.StringFlag{Name: "key-col", Value: "key", Usage: "name of the key column; without it in the file, all rows are one series"},
+			&cli.StringFlag{Name: "tz", Value: "UTC", Usage: "time zone the buckets follow, and of times written without an offset"},
+			&cli.StringFlag{Name: "bucket", Value: "1 day", Usage: "bucket width as a Postgres interval ('15 minutes', '1 day', '1 month')"},
+			&cli.StringFlag{Name: "agg", Value: "sum", Usage: "aggregate per bucket: sum, mean, min, max, last, count"},
+			&cli.StringFlag{Name: "empty", Usage: "an empty bucket between two observed ones: zero or gap (default zero for sum and count, gap otherwise)"},
+			&cli.IntFlag{Name: "degree", Value: 1, Usage: "polynomial trend degree, 0 to 3"},
+			&cli.Float64Flag{Name: "period", Usage: "seasonal period in buckets (7 for weekly in days); 0 for none"},
+			&cli.IntFlag{Name: "harmonics", Usage: "harmonic pairs for the season, 1 to 6, with --period"},
+			&cli.StringFlag{Name: "lambda", Value: "0.95", Usage: "forgetting factor in (0, 1], or 'auto' to choose it per series by one-step error"},
+			&cli.IntFlag{Name: "burn-in", Usage: "points beyond the parameter count before a series gets forecasts"},
+			&cli.IntFlag{Name: "horizon", Value: 12, Usage: "buckets to forecast"},
+			&cli.StringFlag{Name: "format", Value: "table", Usage: "output: table (for reading), csv or json"},
+		},
+		Action: func(c *cli.Context) error {
+			o, err := forecastOptionsFrom(c)
+			if err != nil {
+				return err
+			}
+			name := c.String("csv")
+			var in io.Reader = os.Stdin
+			if name != "-" {
+				f, err := os.Open(name)
+				if err != nil {
+					return fmt.Errorf("--csv: %w", err)
+				}
+				defer f.Close()
+				in = f
+			} else {
+				name = "standard input"
+			}
+			series, err := readForecastCSV(in, name, o)
+			if err != nil {
+				return err
+			}
+			var out []seriesForecast
+			for _, s := range series {
+				fc, err := forecastSeries(s, o)
+				var short *notReadyError
+				if errors.As(err, &short) {
+					fmt.Fprintln(c.App.ErrWriter, short.Error())
+					continue
+				}
+				if err != nil {
+					return err
+				}
+				out = append(out, fc)
+			}
+			return writeForecasts(c.App.Writer, o, out)
+		},
+	}
+}
+
+// forecastOptions are the checked flags of `sidetrend forecast`.
+type forecastOptions struct {
+	timeCol, valueCol, keyCol string
+	keyColSet                 bool // --key-col given: the column must exist
+	cal                       calendar.Calendar
+	agg                       string
+	emptyZero                 bool
+	spec                      estimator.Spec
+	autoLambda                bool
+	horizon                   int
+	format                    string
+}
+
+func forecastOptionsFrom(c *cli.Context) (forecastOptions, error) {
+	o := forecastOptions{
+		timeCol: c.String("time-col"), valueCol: c.String("value-col"), keyCol: c.String("key-col"),
+		keyColSet: c.IsSet("key-col"), agg: c.String("agg"), horizon: c.Int("horizon"), format: c.String("format"),
+	}
+	w, err := calendar.ParseWidth(c.String("bucket"))
+	if err != nil {
+		return o, fmt.Errorf("--bucket: %w", err)
+	}
+	if o.cal, err = calendar.New(w, c.String("tz")); err != nil {
+		return o, fmt.Errorf("--tz: %w", err)
+	}
+	switch o.agg {
+	case "sum", "mean", "min", "max", "last", "count":
+	default:
+		return o, fmt.Errorf("--agg %q is not an aggregate: use sum, mean, min, max, last or count", o.agg)
+	}
+	switch e := c.String("empty"); e {
+	case "":
+		o.emptyZero = o.agg == "sum" || o.agg == "count"
+	case "zero", "gap":
+		o.emptyZero = e == "zero"
+	default:
+		return o, fmt.Errorf("--empty %q is not known: use zero (a bucket without rows is 0) or gap (it is no information)", e)
+	}
+	switch o.format {
+	case "table", "csv", "json":
+	default:
+		return o, fmt.Errorf("--format %q is not known: use table, csv or json", o.format)
+	}
+	if o.horizon < 1 || o.horizon > estimator.MaxHorizon {
+		return o, fmt.Errorf("--horizon %d is out of range: use 1 to %d buckets", o.horizon, estimator.MaxHorizon)
+	}
+	o.spec = estimator.Spec{Degree: c.Int("degree"), Period: c.Float64("period"), Harmonics: c.Int("harmonics"),
+		BurnIn: c.Int("burn-in"), Lambda: 0.95}
+	if o.spec.Period > 0 && !c.IsSet("harmonics") {
+		return o, fmt.Errorf("--period %v needs --harmonics: give 1 to %d harmonic pairs (more follow a sharper seasonal shape)",
+			o.spec.Period, min(estimator.MaxHarmonics, int(math.Floor(o.spec.Period/2))))
+	}
+	switch l := c.String("lambda"); l {
+	case "auto":
+		o.autoLambda = true
+	default:
+		v, err := strconv.ParseFloat(strings.TrimSpace(l), 64)
+		if err != nil {
+			return o, fmt.Errorf("--lambda %q is not a number: use a forgetting factor such as 0.95, or auto", l)
+		}
+		o.spec.Lambda = v
+	}
+	if err := o.spec.Validate(); err != nil {
+		return o, fmt.Errorf("model flags: %w", err)
+	}
+	return o, nil
+}
+
+// bucketAgg holds what a bucket's rows fold into.
+type bucketAgg struct {
+	n             int64
+	sum, min, max float64
+	last          float64
+	lastAt        time.Time
+}
+
+// csvSeries is one series' buckets as read from the file.
+type csvSeries struct {
+	key     string
+	buckets map[int64]*bucketAgg
+	lo, hi  int64 // first and last bucket with rows
+}
+
+// readForecastCSV reads the file and folds its rows into buckets per series,
+// returned in key order.
+func readForecastCSV(in io.Reader, name string, o forecastOptions) ([]*csvSeries, error) {
+	r := csv.NewReader(in)
+	r.FieldsPerRecord = -1
+	r.ReuseRecord = true
+	header, err := r.Read()
+	if errors.Is(err, io.EOF) {
+		return nil, fmt.Errorf("%s is empty: give a CSV file with a header row (%s,%s,...)", name, o.timeCol, o.valueCol)
+	}
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", name, err)
+	}
+	cols := map[string]int{}
+	for i, h := range header {
+		h = strings.TrimSpace(strings.TrimPrefix(h, "\ufeff"))
+		if _, dup := cols[h]; !dup {
+			cols[h] = i
+		}
+	}
+	have := strings.Join(slices.Clone(header), ", ")
+	find := func(col, flag string) (int, error) {
+		i, ok := cols[col]
+		if !ok {
+			return -1, fmt.Errorf("%s has no column %q (its header has: %s): name the column with %s", name, col, have, flag)
+		}
+		return i, nil
+	}
+	ti, err := find(o.timeCol, "--time-col")
+	if err != nil {
+		return nil, err
+	}
+	vi := -1
+	if _, ok := cols[o.valueCol]; ok || o.agg != "count" {
+		if vi, err = find(o.valueCol, "--value-col"); err != nil {
+			return nil, err
+		}
+	}
+	ki := -1
+	if _, ok := cols[o.keyCol]; ok || o.keyColSet {
+		if ki, err = find(o.keyCol, "--key-col"); err != nil {
+			return nil, err
+		}
+	}
+
+	loc := o.cal.Location()
+	bySeries := map[string]*csvSeries{}
+	for {
+		rec, err := r.Read()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			return nil, fmt.Errorf("%s: %w", name, err)
+		}
+		line, _ := r.FieldPos(0)
+		field := func(i int, col string) (string, error) {
+			if i >= len(rec) {
+				return "", fmt.Errorf("%s line %d has %d fields, no %q: give every row all the header's columns", name, line, len(rec), col)
+			}
+			return strings.TrimSpace(rec[i]), nil
+		}
+		ts, err := field(ti, o.timeCol)
+		if err != nil {
+			return nil, err
+		}
+		at, bucket, err := parseRowTime(ts, o.cal, loc)
+		if err != nil {
+			return nil, fmt.Errorf("%s line %d: %s %q %v", name, line, o.timeCol, ts, err)
+		}
+		var v float64
+		if vi >= 0 && o.agg != "count" {
+			vs, err := field(vi, o.valueCol)
+			if err != nil {
+				return nil, err
+			}
+			v, err = strconv.ParseFloat(vs, 64)
+			if err != nil || math.IsNaN(v) || math.IsInf(v, 0) {
+				return nil, fmt.Errorf("%s line %d: %s %q is not a finite number: write it like 1234.5 (a dot for decimals, no thousands separator)",
+					name, line, o.valueCol, vs)
+			}
+		}
+		key := ""
+		if ki >= 0 {
+			if key, err = field(ki, o.keyCol); err != nil {
+				return nil, err
+			}
+		}
+		s := bySeries[key]
+		if s == nil {
+			s = &csvSeries{key: key, buckets: map[int64]*bucketAgg{}, lo: bucket, hi: bucket}
+			bySeries[key] = s
+		}
+		s.lo, s.hi = min(s.lo, bucket), max(s.hi, bucket)
+		b := s.buckets[bucket]
+		if b == nil {
+			b = &bucketAgg{min: v, max: v, last: v, lastAt: at}
+			s.buckets[bucket] = b
+		}
+		b.n++
+		b.sum += v
+		b.min, b.max = min(b.min, v), max(b.max, v)
+		if !at.Before(b.lastAt) { // the later row of two at the same time wins
+			b.last, b.lastAt = v, at
+		}
+	}
+	if len(bySeries) == 0 {
+		return nil, fmt.Errorf("%s has a header but no rows: give at least one row per series", name)
+	}
+	out := make([]*csvSeries, 0, len(bySeries))
+	for _, s := range bySeries {
+		out = append(out, s)
+	}
+	slices.SortFunc(out, func(a, b *csvSeries) int { return strings.Compare(a.key, b.key) })
+	return out, nil
+}
+
+// parseRowTime reads a CSV time and returns it as an instant (for ordering
+// rows within a bucket) with its bucket number. A time with an offset is an
+// instant; one without is wall-clock time in the calendar's zone.
+func parseRowTime(s string, cal calendar.Calendar, loc *time.Location) (time.Time, int64, error) {
+	if s == "" {
+		return time.Time{}, 0, errors.New("is empty: give every row a time")
+	}
+	if t, err := time.Parse(time.RFC3339Nano, s); err == nil {
+		return t, cal.Index(t), nil
+	}
+	for _, layout := range wallLayouts {
+		if w, err := time.Parse(layout, s); err == nil {
+			at := time.Date(w.Year(), w.Month(), w.Day(), w.Hour(), w.Minute(), w.Second(), w.Nanosecond(), loc)
+			return at, cal.IndexLocal(w), nil
+		}
+	}
+	return time.Time{}, 0, errors.New("is not a time: write RFC 3339 (2026-03-01T09:30:00+01:00), " +
+		"or 2026-03-01 09:30:00 or 2026-03-01 for wall-clock time in --tz")
+}
+
+// values returns the series' bucket values from its first to its last
+// bucket with rows; an empty bucket in between is 0 or NaN (a gap).
+func (s *csvSeries) values(agg string, emptyZero bool) []float64 {
+	ys := make([]float64, s.hi-s.lo+1)
+	for i := range ys {
+		b := s.buckets[s.lo+int64(i)]
+		switch {
+		case b == nil && emptyZero:
+			ys[i] = 0
+		case b == nil:
+			ys[i] = math.NaN()
+		case agg == "sum":
+			ys[i] = b.sum
+		case agg == "mean":
+			ys[i] = b.sum / float64(b.n)
+		case agg == "min":
+			ys[i] = b.min
+		case agg == "max":
+			ys[i] = b.max
+		case agg == "last":
+			ys[i] = b.last
+		case agg == "count":
+			ys[i] = float64(b.n)
+		}
+	}
+	return ys
+}
+
+// seriesForecast is one series' fitted model and forecast.
+type seriesForecast struct {
+	key     string
+	lastIdx int64 // the newest bucket
+	buckets int   // buckets from the first to the newest
+	lambda  float64
+	fc      *estimator.Forecast
+}
+
+// notReadyError says a series has too little data for an estimate.
+type notReadyError struct {
+	key  string
+	have int64
+	need int
+}
+
+func (e *notReadyError) Error() string {
+	if e.have >= int64(e.need) {
+		return fmt.Sprintf("series %s: %d points do not determine the model yet (too little spread for its terms); left out",
+			displayKey(e.key), e.have)
+	}
+	return fmt.Sprintf("series %s: only %d points, needs %d; left out", displayKey(e.key), e.have, e.need)
+}
+
+// forecastSeries fits the model to one series and forecasts it.
+func forecastSeries(s *csvSeries, o forecastOptions) (seriesForecast, error) {
+	ys := s.values(o.agg, o.emptyZero)
+	spec := o.spec
+	need := spec.Params() + spec.BurnIn
+	var observed int64
+	for _, y := range ys {
+		if !math.IsNaN(y) {
+			observed++
+		}
+	}
+	if observed < int64(need) {
+		return seriesForecast{}, &notReadyError{key: s.key, have: observed, need: need}
+	}
+	if o.autoLambda {
+		res, err := estimator.SearchLambda(spec, [][]float64{ys}, estimator.SearchOptions{})
+		if errors.Is(err, estimator.ErrNoErrors) {
+			return seriesForecast{}, &notReadyError{key: s.key, have: observed, need: need + 1}
+		}
+		if err != nil {
+			return seriesForecast{}, fmt.Errorf("series %s: choose lambda: %w", displayKey(s.key), err)
+		}
+		spec.Lambda = res.Lambda
+	}
+	st, err := estimator.Fit(spec, ys)
+	if err != nil {
+		return seriesForecast{}, fmt.Errorf("series %s: fit: %w", displayKey(s.key), err)
+	}
+	if !st.Ready() {
+		return seriesForecast{}, &notReadyError{key: s.key, have: st.Count(), need: need}
+	}
+	fc, err := st.Forecast(o.horizon)
+	if err != nil {
+		return seriesForecast{}, fmt.Errorf("series %s: forecast: %w", displayKey(s.key), err)
+	}
+	return seriesForecast{key: s.key, lastIdx: s.hi, buckets: len(ys), lambda: spec.Lambda, fc: fc}, nil
+}
+
+// displayKey names a series in messages and the table.
+func displayKey(k string) string {
+	if k == "" {
+		return "(all rows)"
+	}
+	return strconv.Quote(k)
+}
+
+// forecastRecord is one output row, in the contract's column order; nil is
+// an undefined interval bound (too few points for a residual variance).
+type forecastRecord struct {
+	SeriesKey   string   `json:"series_key"`
+	Horizon     int      `json:"horizon"`
+	PeriodStart string   `json:"period_start"`
+	Yhat        float64  `json:"yhat"`
+	Lo80        *float64 `json:"lo80"`
+	Hi80        *float64 `json:"hi80"`
+	Lo95        *float64 `json:"lo95"`
+	Hi95        *float64 `json:"hi95"`
+	CumYhat     float64  `json:"cum_yhat"`
+	CumLo95     *float64 `json:"cum_lo95"`
+	CumHi95     *float64 `json:"cum_hi95"`
+	AsOf        string   `json:"as_of"`
+}
+
+func bound(x float64) *float64 {
+	if math.IsNaN(x) || math.IsInf(x, 0) {
+		return nil
+	}
+	return &x
+}
+
+// records turns the forecasts into output rows.
+func records(cal calendar.Calendar, out []seriesForecast) []forecastRecord {
+	var recs []forecastRecord
+	for _, sf := range out {
+		asOf := cal.Start(sf.lastIdx).Format(time.RFC3339)
+		fc := sf.fc
+		for i := range fc.Yhat {
+			recs = append(recs, forecastRecord{
+				SeriesKey: sf.key, Horizon: i + 1,
+				PeriodStart: cal.Start(sf.lastIdx + int64(i) + 1).Format(time.RFC3339),
+				Yhat:        fc.Yhat[i], Lo80: bound(fc.Lo80[i]), Hi80: bound(fc.Hi80[i]),
+				Lo95: bound(fc.Lo95[i]), Hi95: bound(fc.Hi95[i]),
+				CumYhat: fc.CumYhat[i], CumLo95: bound(fc.CumLo95[i]), CumHi95: bound(fc.CumHi95[i]),
+				AsOf: asOf,
+			})
+		}
+	}
+	return recs
+}
+
+func writeForecasts(w io.Writer, o forecastOptions, out []seriesForecast) error {
+	recs := records(o.cal, out)
+	switch o.format {
+	case "json":
+		if recs == nil {
+			recs = []forecastRecord{}
+		}
+		enc := json.NewEncoder(w)
+		enc.SetIndent("", "  ")
+		return enc.Encode(recs)
+	case "csv":
+		cw := csv.NewWriter(w)
+		if err := cw.Write(forecastColumns); err != nil {
+			return err
+		}
+		num := func(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
+		opt := func(x *float64) string {
+			if x == nil {
+				return ""
+			}
+			return num(*x)
+		}
+		for _, r := range recs {
+			if err := cw.Write([]string{r.SeriesKey, strconv.Itoa(r.Horizon), r.PeriodStart, num(r.Yhat),
+				opt(r.Lo80), opt(r.Hi80), opt(r.Lo95), opt(r.Hi95), num(r.CumYhat), opt(r.CumLo95), opt(r.CumHi95), r.AsOf}); err != nil {
+				return err
+			}
+		}
+		cw.Flush()
+		return cw.Error()
+	}
+	return writeForecastTable(w, o, out)
+}
+
+// writeForecastTable prints each series as an aligned table for reading,
+// then the caution.
+func writeForecastTable(w io.Writer, o forecastOptions, out []seriesForecast) error {
+	for _, sf := range out {
+		fc := sf.fc
+		// Six significant digits on the largest forecast, two to six decimals.
+		big := 0.0
+		for _, y := range fc.CumYhat {
+			big = max(big, math.Abs(y))
+		}
+		dec := 2
+		if big > 0 {
+			dec = min(max(5-int(math.Floor(math.Log10(big))), 0), 6)
+		}
+		num := func(x float64) string {
+			if math.IsNaN(x) || math.IsInf(x, 0) {
+				return "-"
+			}
+			return strconv.FormatFloat(x, 'f', dec, 64)
+		}
+		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g, sigma %s\n",
+			displayKey(sf.key), sf.buckets, o.cal.Width(), o.cal.Zone(),
+			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, num(fc.Sigma))
+		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+		fmt.Fprintln(tw, "h\tperiod start\tforecast\t80% low\t80% high\t95% low\t95% high\tcumulative\tcum 95% low\tcum 95% high\t")
+		for i := range fc.Yhat {
+			start := o.cal.Start(sf.lastIdx + int64(i) + 1).Format(time.RFC3339)
+			fmt.Fprintf(tw, "%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n", i+1, start, num(fc.Yhat[i]),
+				num(fc.Lo80[i]), num(fc.Hi80[i]), num(fc.Lo95[i]), num(fc.Hi95[i]),
+				num(fc.CumYhat[i]), num(fc.CumLo95[i]), num(fc.CumHi95[i]))
+		}
+		if err := tw.Flush(); err != nil {
+			return err
+		}
+		fmt.Fprintln(w)
+	}
+	if len(out) == 0 {
+		fmt.Fprintln(w, "no series has enough points for a forecast")
+	}
+	_, err := fmt.Fprintln(w, forecastCaution)
+	return err
+}
