@@ -45,7 +45,11 @@ type State struct {
 	vec    []float64 // p scratch
 
 	pd    bool    // chol and theta are valid
-	rcond float64 // reciprocal 1-norm condition number of scaled F
+	rcond float64 // reciprocal 1-norm condition number of scaled F, as last computed
+	// rcondAge counts the updates since rcond was computed (0: compute now).
+	// A comfortably conditioned F (rcond >= rcondSafe) is re-checked every
+	// rcondEvery updates, not on every one: see refactor.
+	rcondAge int
 
 	t   float64 // discounted count of observations, sum lambda^j
 	s   float64 // discounted residual sum of squares of the current fit
@@ -188,8 +192,21 @@ func (st *State) RCond() float64 {
 	if !st.pd {
 		return 0
 	}
-	return st.rcond
+	return st.scaledRCond()
 }
+
+// rcondSafe and rcondEvery bound how stale the condition number behind
+// Ready may be. An update with a value turns F into lambda L^-1 F L^-T plus
+// a positive rank-one term: the scaled conditioning moves by modest factors
+// per step, and a state 10^4 times above MinRCond is re-checked within 16
+// updates (a judgement, not a proven bound; a skip, which can change F a lot,
+// and a decode always recompute it, and so does any state below rcondSafe).
+// The check costs p triangular solves: a third of an update at p = 2 and
+// almost half at p = 6. RCond always computes the current value.
+const (
+	rcondSafe  = 1e-6
+	rcondEvery = 16
+)
 
 // Ready reports whether the state gives estimates: at least p + BurnIn
 // observations and a well-conditioned F (scaled reciprocal condition number
@@ -377,6 +394,7 @@ func (st *State) Skip(k int) error {
 	st.syy *= w
 	st.errs.decay(w)
 	st.steps += int64(k)
+	st.rcondAge = 0 // a gap can change the conditioning a lot: check it now
 	st.refactor()
 	if !st.pd {
 		st.s = 0
@@ -427,12 +445,16 @@ func (st *State) refactor() {
 		for i := range st.theta {
 			st.theta[i] = 0
 		}
-		st.rcond = 0
+		st.rcond, st.rcondAge = 0, 0
 		return
 	}
 	copy(st.theta, st.h)
 	cholSolve(st.chol, st.theta, st.p)
-	st.rcond = st.scaledRCond()
+	if st.rcondAge > 0 && st.rcondAge < rcondEvery && st.rcond >= rcondSafe {
+		st.rcondAge++
+		return
+	}
+	st.rcond, st.rcondAge = st.scaledRCond(), 1
 }
 
 // quadForm returns x^T F^-1 x = ||C^-1 x||^2 with F = C C^T (F must be pd).
@@ -491,7 +513,7 @@ func (st *State) Clone() *State {
 	copy(c.h, st.h)
 	copy(c.chol, st.chol)
 	copy(c.theta, st.theta)
-	c.pd, c.rcond = st.pd, st.rcond
+	c.pd, c.rcond, c.rcondAge = st.pd, st.rcond, st.rcondAge
 	c.t, c.s, c.syy, c.n, c.steps = st.t, st.s, st.syy, st.n, st.steps
 	c.errs, c.tq = st.errs, st.tq
 	return c
