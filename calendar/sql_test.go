@@ -407,3 +407,25 @@ func TestSQLMatchesGoAllZones(t *testing.T) {
 	}
 	t.Logf("%d zones, %d comparisons of each function", len(zones), len(ts))
 }
+
+// TestMonthNumber checks the SQL day-count formula for months against the
+// plain count (year - 2001) * 12 + month - 1 for the 1st and the last day of
+// every month from year 1 to 9999.
+func TestMonthNumber(t *testing.T) {
+	t.Parallel()
+	conn := calendarDB(t)
+	var wrong, months int64
+	if err := conn.QueryRow(context.Background(), `
+		SELECT count(*) FILTER (WHERE sidetrend.month_number(m::date) <> k
+		                           OR sidetrend.bucket_index((m + interval '1 month' - interval '1 day')::date, '1 month', 'UTC') <> k),
+		       count(*)
+		FROM generate_series(timestamp '0001-01-01', timestamp '9999-12-01', interval '1 month') m,
+		     LATERAL (SELECT (date_part('year', m)::bigint - 2001) * 12 + date_part('month', m)::bigint - 1 AS k) x`,
+	).Scan(&wrong, &months); err != nil {
+		t.Fatal(err)
+	}
+	// 9999 years of 12 months.
+	if months != 9999*12 || wrong != 0 {
+		t.Errorf("%d of %d months numbered wrong (want 0 of %d)", wrong, months, 9999*12)
+	}
+}

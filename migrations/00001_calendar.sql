@@ -139,6 +139,20 @@ CREATE FUNCTION sidetrend.floor_div(a bigint, n bigint) RETURNS bigint
 LANGUAGE sql IMMUTABLE PARALLEL SAFE
 RETURN (a + n * (10000000000000 / n + 1)) / n - (10000000000000 / n + 1);
 
+-- The number of months from 2001-01 to the month that starts on first (the
+-- 1st of a month), from its day count alone, so that the local time is
+-- converted once and decomposed once (date_part('year') and
+-- date_part('month') would each do both). The 1st of month k after 2001-01
+-- lies D days after 2001-01-01 with 4800 * D - 146097 * k between -14922 and
+-- 6159 (computed over years 1 to 9999), and since 4800 months are exactly
+-- 146097 days (400 Gregorian years) that holds for every k. So
+-- k = floor((4800 * D + c) / 146097) for any c from 14922 to 139937; 77429
+-- is the middle. The tests compare it with year * 12 + month for every
+-- month of years 1 to 9999.
+CREATE FUNCTION sidetrend.month_number(first date) RETURNS bigint
+LANGUAGE sql IMMUTABLE PARALLEL SAFE
+RETURN sidetrend.floor_div(4800 * (first - DATE '2001-01-01')::bigint + 77429, 146097);
+
 -- The first instant whose wall clock in tz reads wall. Where the reading
 -- occurs twice, the first of the two; where it does not exist, Postgres'
 -- reading (wall AT TIME ZONE tz takes the offset in force before the gap).
@@ -160,7 +174,7 @@ CREATE FUNCTION sidetrend.bucket_index(t timestamptz, width interval, tz text) R
 LANGUAGE sql IMMUTABLE PARALLEL SAFE
 RETURN CASE sidetrend.bucket_kind(width)
     WHEN 1 THEN sidetrend.floor_div(
-        (date_part('year', t AT TIME ZONE tz)::bigint - 2001) * 12 + date_part('month', t AT TIME ZONE tz)::bigint - 1,
+        sidetrend.month_number(date_trunc('month', t AT TIME ZONE tz)::date),
         (date_part('year', width) * 12 + date_part('month', width))::bigint)
     WHEN 2 THEN sidetrend.floor_div((t AT TIME ZONE tz)::date - DATE '2001-01-01', date_part('day', width)::bigint)
     WHEN 3 THEN sidetrend.floor_div(
@@ -173,7 +187,7 @@ CREATE FUNCTION sidetrend.bucket_index(t timestamp, width interval, tz text) RET
 LANGUAGE sql IMMUTABLE PARALLEL SAFE
 RETURN CASE sidetrend.bucket_kind(width)
     WHEN 1 THEN sidetrend.floor_div(
-        (date_part('year', t)::bigint - 2001) * 12 + date_part('month', t)::bigint - 1,
+        sidetrend.month_number(date_trunc('month', t)::date),
         (date_part('year', width) * 12 + date_part('month', width))::bigint)
     WHEN 2 THEN sidetrend.floor_div(t::date - DATE '2001-01-01', date_part('day', width)::bigint)
     WHEN 3 THEN sidetrend.bucket_index(t AT TIME ZONE tz, width, tz)
@@ -206,6 +220,8 @@ COMMENT ON FUNCTION sidetrend.bucket_kind(interval)
     IS 'Internal: 1 for a width of months, 2 of days, 3 of whole seconds, 0 for an invalid width.';
 COMMENT ON FUNCTION sidetrend.floor_div(bigint, bigint)
     IS 'Internal: floor(a / n) for n > 0 and |a| < 10^13.';
+COMMENT ON FUNCTION sidetrend.month_number(date)
+    IS 'Internal: months from 2001-01 to the month that starts on the given 1st of a month.';
 COMMENT ON FUNCTION sidetrend.wall_to_instant(timestamp, text)
     IS 'The first instant whose wall clock in the zone reads the timestamp; in a DST gap, the reading with the offset before the gap.';
 COMMENT ON FUNCTION sidetrend.bucket_index(timestamptz, interval, text)
@@ -223,6 +239,7 @@ DROP FUNCTION sidetrend.bucket_index(date, interval, text);
 DROP FUNCTION sidetrend.bucket_index(timestamp, interval, text);
 DROP FUNCTION sidetrend.bucket_index(timestamptz, interval, text);
 DROP FUNCTION sidetrend.wall_to_instant(timestamp, text);
+DROP FUNCTION sidetrend.month_number(date);
 DROP FUNCTION sidetrend.floor_div(bigint, bigint);
 DROP FUNCTION sidetrend.bucket_kind(interval);
 DROP FUNCTION sidetrend.bucket_reject(interval, anyelement);

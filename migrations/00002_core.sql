@@ -210,10 +210,9 @@ BEGIN
         RAISE EXCEPTION 'empty => "%" is not known', track.empty
             USING ERRCODE = 'invalid_parameter_value', HINT = 'Use empty => ''zero'' (no rows means 0) or ''gap'' (no rows means no information).';
     END IF;
-    IF track.tz IS NULL OR NOT EXISTS (SELECT 1 FROM pg_timezone_names WHERE pg_timezone_names.name = track.tz) THEN
-        RAISE EXCEPTION 'time zone "%" is not known', track.tz
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use an IANA zone name such as ''UTC'' or ''Europe/Berlin'' (see pg_timezone_names).';
-    END IF;
+    -- Only region names (and UTC): Postgres reads short names such as CET as
+    -- fixed offsets in AT TIME ZONE, which would disagree with the calendar.
+    PERFORM sidetrend.zone_check(track.tz);
     IF track.degree IS NULL OR track.degree < 0 OR track.degree > 3 THEN
         RAISE EXCEPTION 'degree % is not supported', track.degree
             USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a polynomial degree from 0 to 3 (1 is a local linear trend).';

@@ -487,6 +487,8 @@ func TestTrackErrors(t *testing.T) {
 		{`SELECT sidetrend.track('m', 'at', 'v', period => 1, harmonics => 1)`, "22023", `too short`},
 		{`SELECT sidetrend.track('m', 'at', 'v', harmonics => 2)`, "22023", `need a period`},
 		{`SELECT sidetrend.track('m', 'at', 'v', tz => 'Mars/Olympus')`, "22023", `time zone`},
+		// CET is a fixed offset to AT TIME ZONE but a zone with DST to Go.
+		{`SELECT sidetrend.track('m', 'at', 'v', tz => 'CET')`, "22023", `time zone`},
 		{`SELECT sidetrend.track('m', 'at', 'v', empty => 'carry')`, "22023", `empty`},
 		{`SELECT sidetrend.track('m', 'at', 'v', key_cols => '{nokey}')`, "42703", `key column "nokey"`},
 		{`SELECT sidetrend.track('m', 'at', 'v', bucket => '-1 day')`, "22023", ``},
