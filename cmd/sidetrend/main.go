@@ -9,6 +9,9 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+	// A copy of the time zone database for machines without /usr/share/zoneinfo;
+	// the calendar must read the same zones as Postgres, which uses the system's.
+	_ "time/tzdata"
 )
 
 func main() {
