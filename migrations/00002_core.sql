@@ -47,8 +47,10 @@ CREATE TABLE sidetrend.changes (
     at          timestamptz NOT NULL DEFAULT now()
 );
 
+-- No foreign key to trackers: its check on every upserted point cost as much
+-- as the upsert itself; the drain joins trackers, and untrack deletes points.
 CREATE TABLE sidetrend.points (
-    tracker_id  int NOT NULL REFERENCES sidetrend.trackers (id) ON DELETE CASCADE,
+    tracker_id  int NOT NULL,
     series_key  text NOT NULL,
     bucket      bigint NOT NULL,
     n           bigint NOT NULL,
@@ -467,6 +469,7 @@ BEGIN
     EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text)', '_backfill_' || t.id);
     EXECUTE format('DROP FUNCTION IF EXISTS sidetrend.%I(text, bigint)', '_recompute_' || t.id);
     DELETE FROM sidetrend.resync WHERE tracker_id = t.id;
+    DELETE FROM sidetrend.points WHERE tracker_id = t.id;
     DELETE FROM sidetrend.changes WHERE tracker_id = t.id;
     DELETE FROM sidetrend.rejects WHERE tracker_id = t.id;
     DELETE FROM sidetrend.trackers WHERE id = t.id;

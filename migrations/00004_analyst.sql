@@ -178,17 +178,26 @@ CREATE TABLE sidetrend.surprises (
 );
 CREATE INDEX surprises_detected_at ON sidetrend.surprises (detected_at);
 
-CREATE TABLE sidetrend.forecast_history (
+-- One row per series and issue bucket, the horizons as arrays: a row per
+-- horizon would write H times more rows on every update (the cost that
+-- dominated the drain when measured). The view below unnests them.
+CREATE TABLE sidetrend.forecast_issues (
     tracker_id   int NOT NULL REFERENCES sidetrend.trackers (id) ON DELETE CASCADE,
     series_key   text NOT NULL,
     issued_for   bigint NOT NULL,
-    horizon      int NOT NULL CHECK (horizon >= 1),
-    period_start timestamptz NOT NULL,
-    yhat         float8,
-    lo95         float8,
-    hi95         float8,
-    PRIMARY KEY (tracker_id, series_key, issued_for, horizon)
+    yhat         float8[] NOT NULL,
+    lo95         float8[] NOT NULL,
+    hi95         float8[] NOT NULL,
+    PRIMARY KEY (tracker_id, series_key, issued_for)
 );
+
+CREATE VIEW sidetrend.forecast_history AS
+SELECT i.tracker_id, i.series_key, i.issued_for, f.horizon::int AS horizon,
+       sidetrend.bucket_start(i.issued_for + f.horizon, t.bucket, t.tz) AS period_start,
+       f.yhat, f.lo95, f.hi95
+FROM sidetrend.forecast_issues i
+JOIN sidetrend.trackers t ON t.id = i.tracker_id
+CROSS JOIN LATERAL unnest(i.yhat, i.lo95, i.hi95) WITH ORDINALITY AS f(yhat, lo95, hi95, horizon);
 
 CREATE VIEW sidetrend.accuracy_by_horizon AS
 SELECT t.name AS tracker,
@@ -467,7 +476,9 @@ COMMENT ON TABLE sidetrend.tune_requests
     IS 'Trackers someone asked the sidecar to tune (sidetrend.request_tune); the sidecar deletes a request when it has stored the results.';
 COMMENT ON TABLE sidetrend.surprises
     IS 'Surprises found while folding buckets: outside95 (actual outside the 95 % interval issued one step earlier; z = (actual - yhat) / se) and slope_turn (the slope direction changed from up to down or back; z = slope_t). Each is also sent as JSON with pg_notify(''sidetrend_surprise'').';
-COMMENT ON TABLE sidetrend.forecast_history
+COMMENT ON TABLE sidetrend.forecast_issues
+    IS 'Storage of sidetrend.forecast_history: one row per series and issue bucket, horizons as arrays.';
+COMMENT ON VIEW sidetrend.forecast_history
     IS 'Forecasts as the sidecar served them: issued_for is the newest folded bucket N they were issued at, horizon h targets bucket N + h starting at period_start. Kept for trackers.history_buckets buckets of issue.';
 
 -- +goose Down
@@ -491,7 +502,8 @@ DROP FUNCTION IF EXISTS sidetrend.tune(text, bool, bool);
 DROP FUNCTION IF EXISTS sidetrend.request_tune(text);
 DROP FUNCTION IF EXISTS sidetrend.check_tracker_access();
 DROP VIEW IF EXISTS sidetrend.accuracy_by_horizon;
-DROP TABLE IF EXISTS sidetrend.forecast_history;
+DROP VIEW IF EXISTS sidetrend.forecast_history;
+DROP TABLE IF EXISTS sidetrend.forecast_issues;
 DROP TABLE IF EXISTS sidetrend.surprises;
 DROP TABLE IF EXISTS sidetrend.tune_requests;
 DROP TABLE IF EXISTS sidetrend.tuning;

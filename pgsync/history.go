@@ -31,25 +31,27 @@ func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Fo
 // bucket, horizon): a replay that serves again at the same bucket does not
 // rewrite what users saw. Trackers with history_buckets = 0 keep nothing.
 const insertHistorySQL = `
-INSERT INTO sidetrend.forecast_history (tracker_id, series_key, issued_for, horizon, period_start, yhat, lo95, hi95)
-SELECT q.tid, q.key, q.issued, q.h, sidetrend.bucket_start(q.issued + q.h, t.bucket, t.tz), q.yhat, q.lo, q.hi
+INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, yhat, lo95, hi95)
+SELECT q.tid, q.key, q.issued, array_agg(q.yhat ORDER BY q.h), array_agg(q.lo ORDER BY q.h), array_agg(q.hi ORDER BY q.h)
 FROM unnest($1::int[], $2::text[], $3::bigint[], $4::int[], $5::float8[], $6::float8[], $7::float8[])
      AS q(tid, key, issued, h, yhat, lo, hi)
 JOIN sidetrend.trackers t ON t.id = q.tid
 WHERE t.history_buckets > 0
-ORDER BY 1, 2, 3, 4
-ON CONFLICT (tracker_id, series_key, issued_for, horizon) DO NOTHING`
+GROUP BY 1, 2, 3
+ORDER BY 1, 2, 3
+ON CONFLICT (tracker_id, series_key, issued_for) DO NOTHING`
 
 // pruneHistorySQL keeps, per series, the forecasts issued in the newest
 // history_buckets buckets: issued_for > newest - history_buckets.
 const pruneHistorySQL = `
-DELETE FROM sidetrend.forecast_history h
+DELETE FROM sidetrend.forecast_issues h
 USING (SELECT tid, key, max(issued) AS newest
        FROM unnest($1::int[], $2::text[], $3::bigint[]) AS u(tid, key, issued) GROUP BY 1, 2) q
 JOIN sidetrend.trackers t ON t.id = q.tid
 WHERE h.tracker_id = q.tid AND h.series_key = q.key AND h.issued_for <= q.newest - t.history_buckets`
 
-// RecordHistory appends served forecasts to sidetrend.forecast_history in
+// RecordHistory appends served forecasts to sidetrend.forecast_issues (read
+// through the view sidetrend.forecast_history) in
 // the caller's transaction and deletes, for each series it was given, the
 // rows issued history_buckets or more buckets before its newest issue.
 func RecordHistory(ctx context.Context, tx pgx.Tx, fcs []IssuedForecast) error {
