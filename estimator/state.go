@@ -3,6 +3,7 @@ package estimator
 import (
 	"fmt"
 	"math"
+	"sync"
 
 	"gonum.org/v1/gonum/stat/distuv"
 )
@@ -137,6 +138,42 @@ func (st *State) score(step *Step, e, df float64) {
 // df = 0.0065 the 95 % value overflows; then there is no interval and both
 // are NaN.
 func studentQuantiles(df float64) (t80, t95 float64) {
+	if q, ok := sharedQuantiles.get(df); ok {
+		return q.t80, q.t95
+	}
+	t80, t95 = computeQuantiles(df)
+	sharedQuantiles.put(quantiles{df: df, t80: t80, t95: t95})
+	return t80, t95
+}
+
+// sharedQuantiles remembers quantiles across states: every series of a
+// tracker in steady state has the same T (the fixed point of T = lambda T + 1
+// in float64), so a sidecar that decodes thousands of states per batch
+// computes each quantile once. Bounded; safe for concurrent use.
+var sharedQuantiles = &quantileMemo{m: map[float64]quantiles{}}
+
+type quantileMemo struct {
+	mu sync.Mutex
+	m  map[float64]quantiles
+}
+
+func (q *quantileMemo) get(df float64) (quantiles, bool) {
+	q.mu.Lock()
+	defer q.mu.Unlock()
+	v, ok := q.m[df]
+	return v, ok
+}
+
+func (q *quantileMemo) put(v quantiles) {
+	q.mu.Lock()
+	defer q.mu.Unlock()
+	if len(q.m) >= 4096 {
+		clear(q.m) // plenty for steady states; replays of short series churn
+	}
+	q.m[v.df] = v
+}
+
+func computeQuantiles(df float64) (t80, t95 float64) {
 	d := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: df}
 	t80, t95 = d.Quantile(0.9), d.Quantile(0.975)
 	if !finite(t80) || !finite(t95) {

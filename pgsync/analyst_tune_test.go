@@ -290,18 +290,19 @@ func TestTuneSQL(t *testing.T) {
 		t.Errorf("tune of an unknown tracker: %v, want SQLSTATE 42704", err)
 	}
 
-	// The tracker has a fixed lambda and results are missing: the sidecar
-	// tunes it (it is backfilled and has ready series) but applies nothing.
+	// The tracker has a fixed lambda: the sidecar does not spend a search on
+	// it by itself, only when asked; it then stores results and applies
+	// nothing.
+	if tuned, _, err := TunePending(ctx, pool, 0, nil); err != nil || tuned != 0 {
+		t.Fatalf("TunePending without a request: %d tuned (err %v), want 0 for a fixed lambda", tuned, err)
+	}
+	exec(t, pool, `SELECT sidetrend.request_tune('sales')`)
 	tuned, applied, err := TunePending(ctx, pool, 0, nil)
 	if err != nil || tuned != 1 || applied {
-		t.Fatalf("TunePending: %d tuned, applied %v, err %v; want 1, false", tuned, applied, err)
+		t.Fatalf("TunePending after a request: %d tuned, applied %v, err %v; want 1, false", tuned, applied, err)
 	}
 	if tuned, _, err := TunePending(ctx, pool, 0, nil); err != nil || tuned != 0 {
 		t.Errorf("TunePending again: %d tuned (err %v), want 0: results are stored", tuned, err)
-	}
-	exec(t, pool, `SELECT sidetrend.request_tune('sales')`)
-	if tuned, _, err := TunePending(ctx, pool, 0, nil); err != nil || tuned != 1 {
-		t.Errorf("TunePending after a request: %d tuned (err %v), want 1", tuned, err)
 	}
 	var requests int
 	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.tune_requests`).Scan(&requests); err != nil || requests != 0 {

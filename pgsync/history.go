@@ -32,13 +32,8 @@ func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Fo
 // rewrite what users saw. Trackers with history_buckets = 0 keep nothing.
 const insertHistorySQL = `
 INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, yhat, lo95, hi95)
-SELECT q.tid, q.key, q.issued, array_agg(q.yhat ORDER BY q.h), array_agg(q.lo ORDER BY q.h), array_agg(q.hi ORDER BY q.h)
-FROM unnest($1::int[], $2::text[], $3::bigint[], $4::int[], $5::float8[], $6::float8[], $7::float8[])
-     AS q(tid, key, issued, h, yhat, lo, hi)
-JOIN sidetrend.trackers t ON t.id = q.tid
-WHERE t.history_buckets > 0
-GROUP BY 1, 2, 3
-ORDER BY 1, 2, 3
+SELECT $1::int, $2::text, $3::bigint, $4::float8[], $5::float8[], $6::float8[]
+FROM sidetrend.trackers t WHERE t.id = $1::int AND t.history_buckets > 0
 ON CONFLICT (tracker_id, series_key, issued_for) DO NOTHING`
 
 // pruneHistorySQL keeps, per series, the forecasts issued in the newest
@@ -58,25 +53,17 @@ func RecordHistory(ctx context.Context, tx pgx.Tx, fcs []IssuedForecast) error {
 	if len(fcs) == 0 {
 		return nil
 	}
-	var tids []int32
-	var keys []string
-	var issued []int64
-	var hs []int32
-	var yhat, lo, hi []*float64
+	// One small pipelined INSERT per series: measured several times
+	// cheaper than one statement that unnests and regroups every horizon.
+	b := &pgx.Batch{}
 	stids, skeys, sissued := make([]int32, len(fcs)), make([]string, len(fcs)), make([]int64, len(fcs))
 	for i, f := range fcs {
 		if len(f.Lo95) != len(f.Yhat) || len(f.Hi95) != len(f.Yhat) {
 			return fmt.Errorf("record history of %q: %d forecasts but %d and %d interval bounds", f.SeriesKey, len(f.Yhat), len(f.Lo95), len(f.Hi95))
 		}
 		stids[i], skeys[i], sissued[i] = int32(f.TrackerID), f.SeriesKey, f.IssuedFor
-		for l := range f.Yhat {
-			tids, keys, issued = append(tids, int32(f.TrackerID)), append(keys, f.SeriesKey), append(issued, f.IssuedFor)
-			hs = append(hs, int32(l+1))
-			yhat, lo, hi = append(yhat, nullable(f.Yhat[l])), append(lo, nullable(f.Lo95[l])), append(hi, nullable(f.Hi95[l]))
-		}
+		b.Queue(insertHistorySQL, int32(f.TrackerID), f.SeriesKey, f.IssuedFor, nullables(f.Yhat), nullables(f.Lo95), nullables(f.Hi95))
 	}
-	b := &pgx.Batch{}
-	b.Queue(insertHistorySQL, tids, keys, issued, hs, yhat, lo, hi)
 	b.Queue(pruneHistorySQL, stids, skeys, sissued)
 	if err := tx.SendBatch(ctx, b).Close(); err != nil {
 		return fmt.Errorf("record forecast history: %w", err)

@@ -184,10 +184,11 @@ func TuneStored(ctx context.Context, pool *pgxpool.Pool, trackerID int) (applied
 }
 
 // TunePending runs TuneStored for every active, backfilled tracker that
-// asks for it: one with a row in sidetrend.tune_requests; one whose ready
-// series have never been tuned (right after its backfill) or were too short
-// to score last time and have grown since; and, when maxAge > 0, one whose
-// results are older than maxAge. It returns how many trackers it tuned and
+// asks for it: one with a row in sidetrend.tune_requests; and one that
+// chooses its own lambda (lambda => NULL or auto_tune) whose ready series
+// have never been tuned (right after its backfill) or were too short to
+// score last time and have grown since, or, when maxAge > 0, whose results
+// are older than maxAge. It returns how many trackers it tuned and
 // whether it applied a lambda anywhere (those series wait for a replay).
 func TunePending(ctx context.Context, pool *pgxpool.Pool, maxAge time.Duration, log *slog.Logger) (tuned int, applied bool, err error) {
 	if log == nil {
@@ -214,15 +215,20 @@ func TunePending(ctx context.Context, pool *pgxpool.Pool, maxAge time.Duration, 
 	return tuned, applied, nil
 }
 
+// tunePendingSQL: a lambda search over every series costs seconds to
+// minutes of CPU for a large tracker, so the sidecar runs it by itself only
+// for trackers that choose their own lambda (lambda => NULL, auto_tune) and
+// for explicit requests (sidetrend.request_tune, `sidetrend tune`).
 const tunePendingSQL = `
 SELECT t.id FROM sidetrend.trackers t
 LEFT JOIN sidetrend.tuning g ON g.tracker_id = t.id AND g.scope = 'tracker' AND g.series_key = ''
 WHERE t.status = 'active' AND t.backfilled
   AND NOT EXISTS (SELECT 1 FROM sidetrend.series s WHERE s.tracker_id = t.id AND s.rebuild)
   AND (EXISTS (SELECT 1 FROM sidetrend.tune_requests r WHERE r.tracker_id = t.id)
-       OR (g.tracker_id IS NULL AND EXISTS (SELECT 1 FROM sidetrend.series s WHERE s.tracker_id = t.id AND s.ready))
-       OR (g.lambda IS NULL AND (SELECT sum(s.points) FROM sidetrend.series s WHERE s.tracker_id = t.id) > g.points)
-       OR ($1::float8 > 0 AND g.computed_at < now() - make_interval(secs => $1::float8)))
+       OR ((t.lambda IS NULL OR t.auto_tune) AND (
+              (g.tracker_id IS NULL AND EXISTS (SELECT 1 FROM sidetrend.series s WHERE s.tracker_id = t.id AND s.ready))
+           OR (g.lambda IS NULL AND (SELECT sum(s.points) FROM sidetrend.series s WHERE s.tracker_id = t.id) > g.points)
+           OR ($1::float8 > 0 AND g.computed_at < now() - make_interval(secs => $1::float8)))))
 ORDER BY t.id`
 
 // trackerTuning is everything tuneTracker found for one tracker.
