@@ -1,9 +1,15 @@
 package pgsync
 
 // Benchmarks of capture, drain and latency against a production-like
-// Postgres. Run them with
+// Postgres. Run them with, for example,
 //
-//	go test -run '^$' -bench . -benchtime 10x ./pgsync/
+//	go test -run '^$' -bench Capture -benchtime 8x ./pgsync/
+//	go test -run '^$' -bench Pipeline -benchtime 2x ./pgsync/
+//	go test -run '^$' -bench Latency -benchtime 3000x ./pgsync/
+//
+// (a pipeline op at 10,000 series takes seconds; the latency percentiles
+// need thousands of commits). The machine is small and shared: compare
+// numbers within one run, and run more than once.
 //
 // They never run in a plain `go test`: nothing here is a Test function, and
 // the benchmark server is started by the benchmarks themselves.
@@ -16,7 +22,8 @@ package pgsync
 // top-level benchmark that only calls b.Run is run exactly once per -count,
 // so its b.Cleanup runs after the last sub-benchmark, and nothing needs a
 // hook in TestMain. A killed benchmark binary takes the server with it
-// (pglocal starts it with a parent-death signal).
+// (pglocal starts it with a parent-death signal, and removes the stale
+// temporary directory on its next start).
 //
 // SIDETREND_BENCH_DATABASE_URL points the benchmarks at an existing server
 // instead (its role must be allowed to create databases).
@@ -31,6 +38,7 @@ import (
 	"context"
 	"fmt"
 	"math"
+	"math/big"
 	"math/rand/v2"
 	"net/url"
 	"os"
@@ -42,6 +50,7 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgtype"
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/sidetrend/sidetrend/pglocal"
@@ -231,6 +240,14 @@ func flatten(rows [][]any) []any {
 	return out
 }
 
+// cents is v rounded to cents as a numeric. The benchmarks pass numeric
+// values in this form, as an application holding money in exact decimals
+// would: pgx converts a float64 to numeric by formatting and parsing it,
+// which costs more client time than the server spends on the row.
+func cents(v float64) pgtype.Numeric {
+	return pgtype.Numeric{Int: big.NewInt(int64(math.Round(v * 100))), Exp: -2, Valid: true}
+}
+
 func onOff(on bool) string {
 	if on {
 		return "on"
@@ -261,7 +278,7 @@ func captureRows(rng *rand.Rand) [][]any {
 		ts := start.Add(time.Duration(i)*step + time.Duration(rng.IntN(int(step))))
 		shop := rng.IntN(captureSeries)
 		v := 20 + 5*float64(shop) + 4*rng.NormFloat64()
-		out[i] = []any{ts, fmt.Sprintf("shop %02d", shop), math.Round(v*100) / 100}
+		out[i] = []any{ts, fmt.Sprintf("shop %02d", shop), cents(v)}
 	}
 	return out
 }
@@ -379,11 +396,7 @@ func BenchmarkCapture(b *testing.B) {
 // --- Pipeline ----------------------------------------------------------
 
 // kioskCols and the kiosk table are the pipeline's source: many kiosks,
-// each posting one takings total per day. One row per series and bucket, in
-// day order, with days long past: every bucket is closed when it arrives,
-// so each source row is folded into its series' state by the batch that
-// claims it, and no row is late (a late row would mean a replay, which is
-// not what these benchmarks measure).
+// each posting takings, bucketed by day.
 var kioskCols = []string{"kiosk", "day", "takings"}
 
 // kioskWarmDays is how much history each series has before the timer
@@ -392,30 +405,42 @@ var kioskCols = []string{"kiosk", "day", "takings"}
 // every batch computes and writes forecasts, as in steady operation.
 const kioskWarmDays = 14
 
-var kioskOrigin = time.Date(2010, 1, 4, 0, 0, 0, 0, time.UTC)
+// kiosks is a database of n kiosks whose day 0 is origin.
+type kiosks struct {
+	pool   *pgxpool.Pool
+	dbURL  string
+	rng    *rand.Rand
+	n      int
+	origin time.Time
+}
 
-// kioskDay is day d's takings of n kiosks, in kiosk order.
-func kioskDay(rng *rand.Rand, n, d int) [][]any {
-	out := make([][]any, n)
-	day := kioskOrigin.AddDate(0, 0, d)
-	for k := range out {
-		v := 300 + float64(k%50) + 0.2*float64(d) + 40*math.Sin(2*math.Pi*float64(d)/7) + 15*rng.NormFloat64()
-		out[k] = []any{fmt.Sprintf("kiosk %05d", k), day.Add(time.Duration(8*3600+rng.IntN(12*3600)) * time.Second), math.Round(v*100) / 100}
+// day is day d's takings of every kiosk, in kiosk order, each at a random
+// time of the trading day; at, if not zero, is the time of every row.
+func (k *kiosks) day(d int, at time.Time) [][]any {
+	out := make([][]any, k.n)
+	start := k.origin.AddDate(0, 0, d)
+	for i := range out {
+		v := 300 + float64(i%50) + 0.2*float64(d) + 40*math.Sin(2*math.Pi*float64(d)/7) + 15*k.rng.NormFloat64()
+		ts := at
+		if ts.IsZero() {
+			ts = start.Add(time.Duration(8*3600+k.rng.IntN(12*3600)) * time.Second)
+		}
+		out[i] = []any{fmt.Sprintf("kiosk %05d", i), ts, cents(v)}
 	}
 	return out
 }
 
-// newKioskDB makes a database with n kiosks' warm-up history, tracked and
-// caught up: every series has a ready state.
-func newKioskDB(b *testing.B, admin string, n int) (*pgxpool.Pool, string, *rand.Rand) {
+// newKiosks makes a database with n kiosks' warm-up history from origin on,
+// tracked and caught up: every series has a ready state.
+func newKiosks(b *testing.B, admin string, n int, origin time.Time) *kiosks {
 	b.Helper()
 	pool, dbURL := newBenchDB(b, admin)
+	k := &kiosks{pool: pool, dbURL: dbURL, rng: rand.New(rand.NewPCG(1, 1)), n: n, origin: origin}
 	ctx := context.Background()
-	rng := rand.New(rand.NewPCG(1, 1))
 	benchExec(b, pool, `CREATE TABLE kiosk_takings (id bigserial PRIMARY KEY, kiosk text NOT NULL, day timestamptz NOT NULL, takings numeric NOT NULL)`)
 	var warm [][]any
 	for d := 0; d < kioskWarmDays; d++ {
-		warm = append(warm, kioskDay(rng, n, d)...)
+		warm = append(warm, k.day(d, time.Time{})...)
 	}
 	if _, err := pool.CopyFrom(ctx, pgx.Identifier{"kiosk_takings"}, kioskCols, pgx.CopyFromRows(warm)); err != nil {
 		b.Fatal(err)
@@ -424,36 +449,35 @@ func newKioskDB(b *testing.B, admin string, n int) (*pgxpool.Pool, string, *rand
 	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
 		b.Fatal(err)
 	}
-	checkKiosks(b, pool, n, kioskWarmDays)
+	k.check(b, kioskWarmDays)
 	benchExec(b, pool, `VACUUM ANALYZE`)
-	return pool, dbURL, rng
+	return k
 }
 
-// insertKioskDays writes days [from, to) of n kiosks in statements of
-// stmtRows rows, as an application batching its writes would.
-func insertKioskDays(b *testing.B, pool *pgxpool.Pool, rng *rand.Rand, n, from, to int) {
+// insert writes rows in statements of stmtRows rows, as an application
+// batching its writes would.
+func (k *kiosks) insert(b *testing.B, rows [][]any) {
 	ctx := context.Background()
 	sql := valuesSQL("kiosk_takings", kioskCols, stmtRows)
-	for d := from; d < to; d++ {
-		rows := kioskDay(rng, n, d)
-		for i := 0; i < len(rows); i += stmtRows {
-			chunk := rows[i:min(i+stmtRows, len(rows))]
-			q := sql
-			if len(chunk) != stmtRows {
-				q = valuesSQL("kiosk_takings", kioskCols, len(chunk))
-			}
-			if _, err := pool.Exec(ctx, q, flatten(chunk)...); err != nil {
-				b.Fatal(err)
-			}
+	for i := 0; i < len(rows); i += stmtRows {
+		chunk := rows[i:min(i+stmtRows, len(rows))]
+		q := sql
+		if len(chunk) != stmtRows {
+			q = valuesSQL("kiosk_takings", kioskCols, len(chunk))
+		}
+		if _, err := k.pool.Exec(ctx, q, flatten(chunk)...); err != nil {
+			b.Fatal(err)
 		}
 	}
 }
 
-// checkKiosks fails b unless every one of n series has folded exactly days
-// points and the change log is empty: a benchmark that lost or skipped work
-// would report a rate for something else.
-func checkKiosks(b *testing.B, pool *pgxpool.Pool, n, days int) {
+// check fails b unless every kiosk has a ready series that has folded
+// exactly days points (any number when days < 0) and the change log is
+// empty: a benchmark that lost or skipped work would report a rate for
+// something else.
+func (k *kiosks) check(b *testing.B, days int) {
 	b.Helper()
+	pool, n := k.pool, k.n
 	var series, minPoints, maxPoints, pending, ready int64
 	err := pool.QueryRow(context.Background(), `
 		SELECT count(*), coalesce(min(points), 0), coalesce(max(points), 0), count(*) FILTER (WHERE ready),
@@ -461,6 +485,9 @@ func checkKiosks(b *testing.B, pool *pgxpool.Pool, n, days int) {
 		FROM sidetrend.series`).Scan(&series, &minPoints, &maxPoints, &ready, &pending)
 	if err != nil {
 		b.Fatal(err)
+	}
+	if days < 0 {
+		minPoints, maxPoints, days = 0, 0, 0
 	}
 	if series != int64(n) || minPoints != int64(days) || maxPoints != int64(days) || ready != int64(n) || pending != 0 {
 		b.Fatalf("after the run: %d series (%d ready) with %d..%d points and %d pending changes; want %d ready series with %d points each and no pending change",
@@ -526,54 +553,86 @@ func startBenchRunner(b *testing.B, dbURL string, onBatch func(BatchInfo)) {
 }
 
 // BenchmarkPipeline measures rows per second through the whole sidecar:
-// source INSERTs, capture triggers, change log, drain into points, state
-// updates and forecast arrays written, with one row per series per bucket.
+// source INSERTs (1,000-row statements, each of distinct kiosks), capture
+// triggers, change log, drain into points, state updates and forecast
+// arrays written.
 //
-// mode=sustained: each op writes one day for every series (1,000-row
-// INSERT statements) while an in-process Runner, woken by NOTIFY, drains
-// concurrently; the op ends when the sidecar has committed every change of
-// that day. rows/s is the end-to-end rate a source can keep up without the
-// change log growing.
+// mode=sustained: each op writes one day for every series while an
+// in-process Runner, woken by NOTIFY, drains concurrently; the op ends when
+// the sidecar has committed every change of that day. The days are long
+// past, so every bucket is closed when it arrives and each source row is
+// folded into its series' state by the batch that claims it: the heaviest
+// case, one fold and one forecast per row. rows/s is the end-to-end rate a
+// source can keep up without the change log growing.
 //
-// mode=backlog: each op first writes backlogRows rows with no sidecar
-// running (timer stopped), then times one Syncer.CatchUp that drains them
-// all: the drain rate with a full log, as after an outage or a bulk load.
+// mode=live: the same, but every row is stamped now, in today's still open
+// bucket: each row adds to its bucket's aggregate and nothing is folded
+// (until midnight). Most rows of a live source are of this kind.
+//
+// mode=backlog: each op first writes backlogRows rows of past days with no
+// sidecar running (timer stopped), then times one Syncer.CatchUp that
+// drains them all: the drain rate with a full log, as after an outage or a
+// bulk load.
+//
+// No row is late (before its series' newest folded bucket): a late row
+// means a replay, which is not what these benchmarks measure.
 func BenchmarkPipeline(b *testing.B) {
 	admin := benchServer(b)
 	// backlogRows is the backlog an op drains: ten full batches
 	// (BatchSize change rows each), so that a drain is mostly full batches.
 	const backlogRows = 10 * BatchSize
+	// past is day 0 of the past-days cases: any Monday long gone.
+	past := time.Date(2010, 1, 4, 0, 0, 0, 0, time.UTC)
+	// today is the start of the current UTC day, the open bucket of mode=live.
+	today := time.Now().UTC().Truncate(24 * time.Hour)
 	for _, n := range []int{1_000, 10_000} {
 		b.Run(fmt.Sprintf("series=%d", n), func(b *testing.B) {
-			b.Run("mode=sustained", func(b *testing.B) {
-				pool, dbURL, rng := newKioskDB(b, admin, n)
-				counter := newDrainCounter()
-				startBenchRunner(b, dbURL, counter.onBatch)
-				report := statementProfile(b, pool)
-				b.ReportAllocs()
-				day, target := kioskWarmDays, int64(0)
-				for b.Loop() {
-					insertKioskDays(b, pool, rng, n, day, day+1)
-					day++
-					target += int64(n) // one change row per series: each statement holds distinct kiosks
-					counter.waitFor(b, target)
-				}
-				rows := float64(day-kioskWarmDays) * float64(n)
-				b.ReportMetric(rows/b.Elapsed().Seconds(), "rows/s")
-				report()
-				checkKiosks(b, pool, n, day)
-			})
+			for _, mode := range []string{"sustained", "live"} {
+				b.Run("mode="+mode, func(b *testing.B) {
+					origin := past
+					if mode == "live" {
+						origin = today.AddDate(0, 0, -kioskWarmDays) // the warm-up ends yesterday
+					}
+					k := newKiosks(b, admin, n, origin)
+					counter := newDrainCounter()
+					startBenchRunner(b, k.dbURL, counter.onBatch)
+					report := statementProfile(b, k.pool)
+					b.ReportAllocs()
+					day, target := kioskWarmDays, int64(0)
+					for b.Loop() {
+						at := time.Time{}
+						if mode == "live" {
+							at = time.Now()
+						}
+						k.insert(b, k.day(day, at))
+						if mode == "sustained" {
+							day++
+						}
+						target += int64(n) // one change row per row: each statement holds distinct kiosks
+						counter.waitFor(b, target)
+					}
+					b.ReportMetric(float64(target)/b.Elapsed().Seconds(), "rows/s")
+					report()
+					if mode == "sustained" {
+						k.check(b, day)
+					} else {
+						k.check(b, -1)
+					}
+				})
+			}
 			b.Run("mode=backlog", func(b *testing.B) {
-				pool, _, rng := newKioskDB(b, admin, n)
-				s := NewSyncer(pool, nil)
+				k := newKiosks(b, admin, n, past)
+				s := NewSyncer(k.pool, nil)
 				days := max(1, backlogRows/n)
-				report := statementProfile(b, pool)
+				report := statementProfile(b, k.pool)
 				b.ReportAllocs()
 				day := kioskWarmDays
 				ctx := context.Background()
 				for b.Loop() {
 					b.StopTimer()
-					insertKioskDays(b, pool, rng, n, day, day+days)
+					for d := day; d < day+days; d++ {
+						k.insert(b, k.day(d, time.Time{}))
+					}
 					day += days
 					b.StartTimer()
 					if err := s.CatchUp(ctx); err != nil {
@@ -583,7 +642,7 @@ func BenchmarkPipeline(b *testing.B) {
 				rows := float64(day-kioskWarmDays) * float64(n)
 				b.ReportMetric(rows/b.Elapsed().Seconds(), "rows/s")
 				report()
-				checkKiosks(b, pool, n, day)
+				k.check(b, day)
 			})
 		})
 	}
