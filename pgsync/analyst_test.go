@@ -28,7 +28,8 @@ type dailySeries struct {
 
 func dailySums(t *testing.T, pool *pgxpool.Pool, table string) map[string]dailySeries {
 	t.Helper()
-	rows, err := pool.Query(context.Background(), fmt.Sprintf(`SELECT shop, sold_at, amount::float8 FROM %s`, table))
+	rows, err := pool.Query(context.Background(), fmt.Sprintf(
+		`SELECT shop, sold_at, amount::float8 FROM %s WHERE amount IS NOT NULL AND sold_at IS NOT NULL AND amount::text <> 'NaN'`, table))
 	if err != nil {
 		t.Fatal(err)
 	}

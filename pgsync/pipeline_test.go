@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
-	"sort"
 	"strings"
 	"sync"
 	"testing"
@@ -58,39 +57,9 @@ func dayIndex(ts time.Time) int64 {
 // and fit the estimator from scratch. It knows nothing of the change log.
 func offlineFit(t *testing.T, pool *pgxpool.Pool, table string, spec estimator.Spec) map[string]*estimator.State {
 	t.Helper()
-	rows, err := pool.Query(context.Background(),
-		fmt.Sprintf(`SELECT shop, sold_at, amount::float8 FROM %s WHERE amount IS NOT NULL AND sold_at IS NOT NULL AND amount::text <> 'NaN'`, table))
-	if err != nil {
-		t.Fatal(err)
-	}
-	sums := map[string]map[int64]float64{}
-	for rows.Next() {
-		var key string
-		var ts time.Time
-		var v float64
-		if err := rows.Scan(&key, &ts, &v); err != nil {
-			t.Fatal(err)
-		}
-		if sums[key] == nil {
-			sums[key] = map[int64]float64{}
-		}
-		sums[key][dayIndex(ts)] += v
-	}
-	if err := rows.Err(); err != nil {
-		t.Fatal(err)
-	}
 	out := map[string]*estimator.State{}
-	for key, byDay := range sums {
-		days := make([]int64, 0, len(byDay))
-		for d := range byDay {
-			days = append(days, d)
-		}
-		sort.Slice(days, func(i, j int) bool { return days[i] < days[j] })
-		ys := make([]float64, 0, days[len(days)-1]-days[0]+1)
-		for d := days[0]; d <= days[len(days)-1]; d++ {
-			ys = append(ys, byDay[d]) // a missing day is a zero sum
-		}
-		st, err := estimator.Fit(spec, ys)
+	for key, d := range dailySums(t, pool, table) { // a missing day is a zero sum
+		st, err := estimator.Fit(spec, d.ys)
 		if err != nil {
 			t.Fatal(err)
 		}
