@@ -30,7 +30,9 @@ const BatchSize = 2000
 var claimSQL = `
 WITH claimed AS (
     DELETE FROM sidetrend.changes c
-    WHERE c.id IN (SELECT id FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(BatchSize) + ` FOR UPDATE SKIP LOCKED)
+    -- ctid = ANY(ARRAY(...)) always plans as a TID scan; the IN form was
+    -- cached as a nested-loop semi join that re-ran the LIMIT subquery per row.
+    WHERE c.ctid = ANY (ARRAY(SELECT ctid FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(BatchSize) + ` FOR UPDATE SKIP LOCKED))
     RETURNING c.tracker_id, c.series_key, c.bucket, c.n, c.sum, c.min, c.max, c.last_t, c.last_v, c.retract
 ), agg AS (
     SELECT tracker_id, series_key, bucket, sum(n) AS n, sum(sum) AS sum,
@@ -82,8 +84,13 @@ const pointsSQL = `
 SELECT p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v,
        sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) AS ends
 FROM unnest($1::int[], $2::text[], $3::bigint[]) AS q(tid, key, after)
-JOIN sidetrend.points p ON p.tracker_id = q.tid AND p.series_key = q.key AND p.bucket > q.after
-JOIN sidetrend.trackers t ON t.id = p.tracker_id
+JOIN sidetrend.trackers t ON t.id = q.tid
+-- LATERAL with OFFSET 0 keeps the index condition on all three key columns
+-- even in a generic plan made while the points table was never analysed.
+CROSS JOIN LATERAL (
+    SELECT * FROM sidetrend.points p
+    WHERE p.tracker_id = q.tid AND p.series_key = q.key AND p.bucket > q.after
+    OFFSET 0) p
 ORDER BY 1, 2, 3`
 
 const updateSeriesSQL = `
