@@ -146,14 +146,6 @@ DECLARE
     v_name     text := coalesce(track.name, (SELECT c.relname FROM pg_class c WHERE c.oid = track.source));
     v_empty    text := coalesce(track.empty, CASE WHEN track.agg IN ('sum', 'count') THEN 'zero' ELSE 'gap' END);
     v_cols     text;
-    v_key      text;
-    v_keyfn    text;
-    v_tstz     text;
-    v_valid    text;
-    v_reason   text;
-    v_val      text;
-    v_aggsel   text;
-    v_fn       text;
     c          text;
 BEGIN
     SELECT c.relkind, format('%I.%I', n.nspname, c.relname) INTO v_kind, v_relname
