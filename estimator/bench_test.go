@@ -94,3 +94,22 @@ func BenchmarkRefit(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkRCond: the scaled reciprocal condition number alone, which
+// Observe recomputes every rcondEvery updates of a well-conditioned state
+// (see rcondSafe).
+func BenchmarkRCond(b *testing.B) {
+	for _, spec := range benchSpecs {
+		b.Run(fmt.Sprintf("p=%d", spec.Params()), func(b *testing.B) {
+			st, _ := warmState(b, spec)
+			b.ReportAllocs()
+			var sum float64
+			for b.Loop() {
+				sum += st.scaledRCond()
+			}
+			if !(sum > 0) {
+				b.Fatal("scaled condition number is not positive")
+			}
+		})
+	}
+}

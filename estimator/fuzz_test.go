@@ -114,6 +114,10 @@ func FuzzUpdate(f *testing.F) {
 	// Found by the fuzzer: S from its definition, syy - h^T theta, was
 	// Inf - Inf = NaN for values near 1e154 (now a sum of squares).
 	f.Add([]byte("70000000\xe7_000000000000000000000000000000000000"))
+	// Found by the fuzzer: a tiny value and a long gap left F with a
+	// diagonal entry of -1e-241, and the state no longer decoded.
+	f.Add([]byte("%00000000072B\x00\x00\x00\x00\x00\x00000000000"))
+	f.Add([]byte("%00000000079B\x00\x00\x00\x00\x00\x00000000000"))
 	f.Fuzz(func(t *testing.T, data []byte) {
 		if len(data) == 0 {
 			return

@@ -108,7 +108,7 @@ func TestShiftProperty(t *testing.T) {
 				want := spec.Regressors(j+k, make([]float64, p))
 				lk := spec.Shift(k, make([]float64, p*p))
 				got := make([]float64, p)
-				matVec(lk, fj, got, p)
+				newSparseRows(lk, p, nil, nil, nil).mulVec(fj, got)
 				for i := range got {
 					if !scalar.EqualWithinAbsOrRel(got[i], want[i], 1e-11, 1e-12) {
 						t.Errorf("%v: (L^%v f(%v))[%d] = %v, f(%v)[%d] = %v", spec, k, j, i, got[i], j+k, i, want[i])

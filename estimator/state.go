@@ -30,20 +30,42 @@ const MinRCond = 1e-10
 // f(1)^T F_old^-1 f(1) / lambda. A bucket without a value applies the shift
 // only. theta is in local coordinates relative to the newest bucket. The
 // update allocates nothing; queries that return slices allocate them.
+//
+// L^-1 and f(0) are mostly zeros: L^-1 is block diagonal with a lower
+// triangular polynomial block, a 2x2 rotation per harmonic pair and a 1x1
+// block for a harmonic at period/2, and f(0) has ones for the constant and
+// for each cosine and zeros elsewhere. The update keeps only their nonzero
+// entries and skips the products with exact zeros. The values multiplied
+// are finite, so a skipped term is an exact +-0 and each sum is the same
+// float64, bit for bit, as the dense product gives (each sum starts from
+// +0, and adding +-0 to a sum that is not -0 changes nothing).
+//
+// The two models with p = 2, the local linear trend (L^-1 = [[1, 0],
+// [-1, 1]]) and a level with a period-2 cosine (L^-1 = diag(1, -1)), run
+// the same arithmetic through unrolled 2 x 2 kernels (shift2, mulVec2,
+// cholesky2, forwardSubst2, cholSolve2): at p = 2 the loops of the general
+// kernels would cost more than their arithmetic.
 type State struct {
 	spec   Spec
 	p      int
 	lambda float64
 
-	f0, f1 []float64 // f(0), f(1)
-	linv   []float64 // L^-1, row-major p x p
-	f      []float64 // F, symmetric, full row-major p x p
-	h      []float64
-	chol   []float64 // lower Cholesky factor of F when pd
-	theta  []float64
-	tmp    []float64 // p x p scratch
-	hnew   []float64 // p scratch
-	vec    []float64 // p scratch
+	f0, f1 []float64  // f(0), f(1)
+	f0nz   []int      // indices i with f0[i] != 0, increasing
+	linv   sparseRows // L^-1
+	// unrolled: p = 2, and linv2 = L^-1 (row-major) has only the entries
+	// 0 and +-1, so every product in shift2 and mulVec2 is exact and their
+	// sums agree with the general kernels' even where the compiler fuses a
+	// multiply and an add. Skip shifts by L^-k with the general kernels.
+	unrolled bool
+	linv2    [4]float64
+	f        []float64 // F, symmetric, full row-major p x p
+	h        []float64
+	chol     []float64 // lower Cholesky factor C of F when pd, 1/C_ii on the diagonal
+	theta    []float64
+	tmp      []float64 // p x p scratch
+	hnew     []float64 // p scratch
+	vec      []float64 // p scratch
 
 	pd    bool    // chol and theta are valid
 	rcond float64 // reciprocal 1-norm condition number of scaled F, as last computed
@@ -188,20 +210,100 @@ func NewState(spec Spec) (*State, error) {
 		return nil, err
 	}
 	p := spec.Params()
-	buf := make([]float64, 5*p+4*p*p)
+	// L^-1 has at most (d+1)(d+2)/2 nonzeros in its polynomial block, 4 in
+	// each harmonic pair and 1 for a cosine at period/2. One allocation
+	// holds the floats and one the indices (a sidecar decodes thousands of
+	// states per batch).
+	nnz := (spec.Degree + 1) * (spec.Degree + 2) / 2
+	for k := 1; k <= spec.Harmonics; k++ {
+		if spec.nyquist(k) {
+			nnz++
+		} else {
+			nnz += 4
+		}
+	}
+	buf := make([]float64, 6*p+3*p*p+nnz)
 	take := func(n int) []float64 {
 		s := buf[:n:n]
 		buf = buf[n:]
 		return s
 	}
 	st := &State{spec: spec, p: p, lambda: spec.Lambda}
-	st.f0, st.f1, st.h, st.theta, st.hnew = take(p), take(p), take(p), take(p), take(p)
-	st.linv, st.f, st.chol, st.tmp = take(p*p), take(p*p), take(p*p), take(p*p)
-	st.vec = make([]float64, p)
+	st.f0, st.f1, st.h, st.theta, st.hnew, st.vec = take(p), take(p), take(p), take(p), take(p), take(p)
+	st.f, st.chol, st.tmp = take(p*p), take(p*p), take(p*p)
 	spec.Regressors(0, st.f0)
 	spec.Regressors(1, st.f1)
-	spec.Shift(-1, st.linv)
+	nf0 := nonzeros(st.f0)
+	ints := make([]int, nf0+p+1+nnz)
+	st.f0nz = ints[:0:nf0]
+	for i, x := range st.f0 {
+		if x != 0 {
+			st.f0nz = append(st.f0nz, i)
+		}
+	}
+	ints = ints[nf0:]
+	linv := spec.Shift(-1, st.tmp) // tmp is scratch: linv keeps a copy
+	st.linv = newSparseRows(linv, p, ints[:0:p+1], ints[p+1:p+1], take(nnz)[:0])
+	if p == 2 {
+		st.unrolled = true
+		for i, x := range linv {
+			st.linv2[i] = x
+			st.unrolled = st.unrolled && (x == 0 || x == 1 || x == -1)
+		}
+	}
 	return st, nil
+}
+
+// sparseRows is a p x p matrix kept by its nonzero entries, row by row in
+// increasing column order: row i has the value val[k] in column col[k] for
+// start[i] <= k < start[i+1].
+type sparseRows struct {
+	start []int // p + 1 offsets
+	col   []int
+	val   []float64
+}
+
+// newSparseRows keeps the entries of the row-major p x p matrix a that are
+// not exactly zero. It appends to start, col and val, which may be nil;
+// with room for p + 1, nonzeros(a) and nonzeros(a) entries it allocates
+// nothing. a may be scratch: the entries are copied.
+func newSparseRows(a []float64, p int, start, col []int, val []float64) sparseRows {
+	m := sparseRows{start: append(start, 0), col: col, val: val}
+	for i := 0; i < p; i++ {
+		for k := 0; k < p; k++ {
+			if v := a[i*p+k]; v != 0 {
+				m.col = append(m.col, k)
+				m.val = append(m.val, v)
+			}
+		}
+		m.start = append(m.start, len(m.col))
+	}
+	return m
+}
+
+// nonzeros counts the entries of xs that are not exactly zero.
+func nonzeros(xs []float64) int {
+	n := 0
+	for _, x := range xs {
+		if x != 0 {
+			n++
+		}
+	}
+	return n
+}
+
+// mulVec sets dst = m x, the sums in increasing column order like a dense
+// product.
+func (m sparseRows) mulVec(x, dst []float64) {
+	for i := range dst {
+		lo, hi := m.start[i], m.start[i+1]
+		cols, vals := m.col[lo:hi], m.val[lo:hi]
+		var sum float64
+		for k, c := range cols {
+			sum += vals[k] * x[c]
+		}
+		dst[i] = sum
+	}
 }
 
 // Spec returns the model the state was built for.
@@ -238,8 +340,9 @@ func (st *State) RCond() float64 {
 // per step, and a state 10^4 times above MinRCond is re-checked within 16
 // updates (a judgement, not a proven bound; a skip, which can change F a lot,
 // and a decode always recompute it, and so does any state below rcondSafe).
-// The check costs p triangular solves: a third of an update at p = 2 and
-// almost half at p = 6. RCond always computes the current value.
+// The check costs p solves with the Cholesky factor: about two thirds of an
+// update at p = 2 and about one whole update at p = 6 (BenchmarkRCond
+// beside BenchmarkObserve). RCond always computes the current value.
 const (
 	rcondSafe  = 1e-6
 	rcondEvery = 16
@@ -312,32 +415,48 @@ func (st *State) Observe(y float64) (Step, error) {
 
 	// Work out everything that depends on y before touching the state, so
 	// that an overflow leaves it as it was.
-	matVec(st.linv, st.h, st.hnew, p)
+	if st.unrolled {
+		mulVec2(&st.linv2, st.h, st.hnew)
+	} else {
+		st.linv.mulVec(st.h, st.hnew)
+	}
 	for i := range st.hnew {
-		st.hnew[i] = lam*st.hnew[i] + st.f0[i]*y
+		st.hnew[i] *= lam
+	}
+	for _, i := range st.f0nz {
+		st.hnew[i] += st.f0[i] * y
 	}
 	syy := lam*st.syy + y*y
 	s := lam * st.s
 	if st.pd {
 		s += e * e / (1 + q)
 	}
-	errs := st.errs
-	if step.Scored {
-		errs.add(y, e, step, lam)
-	} else {
-		errs.decay(lam)
+	// x - x is 0 for a finite x and NaN for NaN or +-Inf: one sum and one
+	// comparison check them all.
+	nonFinite := (syy - syy) + (s - s)
+	for _, x := range st.hnew {
+		nonFinite += x - x
 	}
-	if !finite(syy) || !finite(s) || !allFinite(st.hnew) || !errs.finite() {
+	// The error sums come last: add changes them only when all its sums
+	// stay finite, and nothing after it can fail.
+	if nonFinite != 0 || step.Scored && !st.errs.add(y, e, step, lam) {
 		return Step{}, fmt.Errorf("estimator: value %v is too large to fold in without overflow", y)
 	}
+	if !step.Scored {
+		st.errs.decay(lam)
+	}
 
-	st.shiftF(st.linv, lam)
-	for i := 0; i < p; i++ {
-		for j := 0; j < p; j++ {
+	if st.unrolled {
+		shift2(&st.linv2, st.f, lam)
+	} else {
+		st.shiftF(st.linv, lam)
+	}
+	for _, i := range st.f0nz {
+		for _, j := range st.f0nz {
 			st.f[i*p+j] += st.f0[i] * st.f0[j]
 		}
 	}
-	copy(st.h, st.hnew)
+	st.h, st.hnew = st.hnew, st.h
 	st.t = lam*st.t + 1
 	st.syy = syy
 	// The recursion for S needs a previous fit that is good to working
@@ -361,17 +480,24 @@ func (st *State) Observe(y float64) (Step, error) {
 	}
 	st.n++
 	st.steps++
-	st.errs = errs
 	return step, nil
 }
 
-func (es *errorSums) add(y, e float64, step Step, lam float64) {
+// add scores one error. It reports false, and changes nothing, when a sum
+// would overflow (an encoding of the state can hold only finite sums).
+func (es *errorSums) add(y, e float64, step Step, lam float64) bool {
+	ae := math.Abs(e)
+	sumAbs, sumSq, sumErr := es.sumAbs+ae, es.sumSq+e*e, es.sumErr+e
+	dAbs, dSq, dWeight := lam*es.dAbs+ae, lam*es.dSq+e*e, lam*es.dWeight+1
+	// x - x is 0 for a finite x, NaN otherwise (see Observe). sumAPE needs
+	// no check: an actual so close to 0 that |e / Y| overflows has no
+	// percentage error, like Y = 0 itself.
+	if (sumAbs-sumAbs)+(sumSq-sumSq)+(sumErr-sumErr)+(dAbs-dAbs)+(dSq-dSq)+(dWeight-dWeight) != 0 {
+		return false
+	}
 	es.n++
-	es.sumAbs += math.Abs(e)
-	es.sumSq += e * e
-	es.sumErr += e
-	// An actual so close to 0 that |e / Y| overflows has no percentage
-	// error, like Y = 0 itself.
+	es.sumAbs, es.sumSq, es.sumErr = sumAbs, sumSq, sumErr
+	es.dAbs, es.dSq, es.dWeight = dAbs, dSq, dWeight
 	if ape := math.Abs(e / y); y != 0 && finite(es.sumAPE+ape) {
 		es.nAPE++
 		es.sumAPE += ape
@@ -385,15 +511,7 @@ func (es *errorSums) add(y, e float64, step Step, lam float64) {
 			es.in95++
 		}
 	}
-	es.dAbs = lam*es.dAbs + math.Abs(e)
-	es.dSq = lam*es.dSq + e*e
-	es.dWeight = lam*es.dWeight + 1
-}
-
-// finite reports whether every sum is a finite number (an encoding of the
-// state can hold only those).
-func (es *errorSums) finite() bool {
-	return allFinite([]float64{es.sumAbs, es.sumSq, es.sumErr, es.sumAPE, es.dAbs, es.dSq, es.dWeight})
+	return true
 }
 
 func (es *errorSums) decay(w float64) {
@@ -417,15 +535,14 @@ func (st *State) Skip(k int) error {
 	if int64(k) > math.MaxInt64-st.steps {
 		return fmt.Errorf("estimator: cannot skip %d buckets: the bucket count would overflow", k)
 	}
-	p := st.p
 	w := math.Pow(st.lambda, float64(k))
 	lk := st.tmpShift(k)
-	matVec(lk, st.h, st.hnew, p)
+	lk.mulVec(st.h, st.hnew)
 	for i := range st.hnew {
 		st.hnew[i] *= w
 	}
 	st.shiftF(lk, w)
-	copy(st.h, st.hnew)
+	st.h, st.hnew = st.hnew, st.h
 	st.t *= w
 	st.s *= w
 	st.syy *= w
@@ -439,36 +556,54 @@ func (st *State) Skip(k int) error {
 	return nil
 }
 
-// tmpShift returns L^-k in a fresh slice (Skip is not on the hot path).
-func (st *State) tmpShift(k int) []float64 {
+// tmpShift returns L^-k, freshly allocated unless k = 1 (Skip is not on the
+// hot path).
+func (st *State) tmpShift(k int) sparseRows {
 	if k == 1 {
 		return st.linv
 	}
-	return st.spec.Shift(float64(-k), make([]float64, st.p*st.p))
+	return newSparseRows(st.spec.Shift(float64(-k), make([]float64, st.p*st.p)), st.p, nil, nil, nil)
 }
 
-// shiftF sets F <- w A F A^T.
-func (st *State) shiftF(a []float64, w float64) {
+// shiftF sets F <- w A F A^T, skipping the zeros of A (see State).
+//
+// F is positive semidefinite and so is w A F A^T, whose diagonal entries
+// are sums of squares in exact arithmetic; rounding can leave one a tiny
+// negative number all the same (found by the fuzzer: a value of 1.4e-76 and
+// a gap of 16,946 buckets left -1e-241 on a sine term), which no valid state
+// holds and the decoder rejects. Both shift kernels set such an entry to 0.
+func (st *State) shiftF(a sparseRows, w float64) {
 	p := st.p
+	f, tmp := st.f[:p*p], st.tmp[:p*p]
 	// tmp = A F
 	for i := 0; i < p; i++ {
-		for j := 0; j < p; j++ {
+		lo, hi := a.start[i], a.start[i+1]
+		cols, vals := a.col[lo:hi], a.val[lo:hi]
+		row := tmp[i*p : i*p+p]
+		for j := range row {
 			var sum float64
-			for k := 0; k < p; k++ {
-				sum += a[i*p+k] * st.f[k*p+j]
+			for k, c := range cols {
+				sum += vals[k] * f[c*p+j]
 			}
-			st.tmp[i*p+j] = sum
+			row[j] = sum
 		}
 	}
 	// F = w tmp A^T, symmetric by construction: compute the lower half and mirror.
-	for i := 0; i < p; i++ {
-		for j := 0; j <= i; j++ {
+	for j := 0; j < p; j++ {
+		lo, hi := a.start[j], a.start[j+1]
+		cols, vals := a.col[lo:hi], a.val[lo:hi]
+		for i := j; i < p; i++ {
+			row := tmp[i*p : i*p+p]
 			var sum float64
-			for k := 0; k < p; k++ {
-				sum += st.tmp[i*p+k] * a[j*p+k]
+			for k, c := range cols {
+				sum += row[c] * vals[k]
 			}
-			st.f[i*p+j] = w * sum
-			st.f[j*p+i] = w * sum
+			v := w * sum
+			if i == j && v < 0 {
+				v = 0
+			}
+			f[i*p+j] = v
+			f[j*p+i] = v
 		}
 	}
 }
@@ -477,7 +612,7 @@ func (st *State) shiftF(a []float64, w float64) {
 // reciprocal condition number. It is the only place those are computed, so a
 // decoded state has bit-for-bit the same derived values as the one encoded.
 func (st *State) refactor() {
-	st.pd = cholesky(st.f, st.chol, st.p)
+	st.pd = st.cholesky()
 	if !st.pd {
 		for i := range st.theta {
 			st.theta[i] = 0
@@ -485,8 +620,7 @@ func (st *State) refactor() {
 		st.rcond, st.rcondAge = 0, 0
 		return
 	}
-	copy(st.theta, st.h)
-	cholSolve(st.chol, st.theta, st.p)
+	st.cholSolve(st.h, st.theta)
 	if st.rcondAge > 0 && st.rcondAge < rcondEvery && st.rcond >= rcondSafe {
 		st.rcondAge++
 		return
@@ -496,8 +630,7 @@ func (st *State) refactor() {
 
 // quadForm returns x^T F^-1 x = ||C^-1 x||^2 with F = C C^T (F must be pd).
 func (st *State) quadForm(x []float64) float64 {
-	copy(st.vec, x)
-	forwardSubst(st.chol, st.vec, st.p)
+	st.forwardSubst(x, st.vec)
 	return dot(st.vec, st.vec)
 }
 
@@ -506,22 +639,25 @@ func (st *State) quadForm(x []float64) float64 {
 // time without an explicit inverse of F being kept.
 func (st *State) scaledRCond() float64 {
 	p := st.p
+	d := st.tmp[:p] // D^1/2 (tmp is free outside shiftF)
+	for i := range d {
+		d[i] = math.Sqrt(st.f[i*p+i])
+	}
 	var normA, normInv float64
-	for j := 0; j < p; j++ {
-		dj := math.Sqrt(st.f[j*p+j])
+	for j, dj := range d {
 		var col float64
-		for i := 0; i < p; i++ {
-			col += math.Abs(st.f[i*p+j]) / (math.Sqrt(st.f[i*p+i]) * dj)
+		for i, di := range d {
+			col += math.Abs(st.f[i*p+j]) / (di * dj)
 		}
 		normA = math.Max(normA, col)
 		for i := range st.vec {
 			st.vec[i] = 0
 		}
 		st.vec[j] = dj
-		cholSolve(st.chol, st.vec, p)
+		st.cholSolve(st.vec, st.vec)
 		col = 0
-		for i := 0; i < p; i++ {
-			col += math.Abs(st.vec[i] * math.Sqrt(st.f[i*p+i]))
+		for i, di := range d {
+			col += math.Abs(st.vec[i] * di)
 		}
 		normInv = math.Max(normInv, col)
 	}
@@ -556,66 +692,157 @@ func (st *State) Clone() *State {
 	return c
 }
 
-// cholesky factors the symmetric p x p matrix a = c c^T into the lower
-// triangle of c. It reports false when a is not numerically positive
-// definite: a pivot that is not positive or below 1e-13 of its diagonal
-// entry (the rounding left over from a singular F).
-func cholesky(a, c []float64, p int) bool {
-	for i := range c[:p*p] {
-		c[i] = 0
+// cholesky factors F into chol (see the function cholesky).
+func (st *State) cholesky() bool {
+	if st.unrolled {
+		return cholesky2(st.f, st.chol)
 	}
+	return cholesky(st.f, st.chol, st.p)
+}
+
+// forwardSubst solves C x = b with the factor in chol.
+func (st *State) forwardSubst(b, x []float64) {
+	if st.unrolled {
+		forwardSubst2(st.chol, b, x)
+		return
+	}
+	forwardSubst(st.chol, b, x, st.p)
+}
+
+// cholSolve solves F x = b with the factor in chol.
+func (st *State) cholSolve(b, x []float64) {
+	if st.unrolled {
+		cholSolve2(st.chol, b, x)
+		return
+	}
+	cholSolve(st.chol, b, x, st.p)
+}
+
+// cholesky factors the symmetric p x p matrix a = C C^T into the lower
+// triangle of c, with 1 / C_jj in place of each diagonal entry C_jj, so
+// that the triangular solves multiply instead of divide. It reports false
+// when a is not numerically positive definite: a pivot that is not positive
+// or below 1e-13 of its diagonal entry (the rounding left over from a
+// singular F); the lower triangle of c is then partly written and means
+// nothing. The strict upper triangle of c is neither written nor read: it
+// stays as the caller made it (zero in a State).
+func cholesky(a, c []float64, p int) bool {
+	a, c = a[:p*p], c[:p*p]
 	for j := 0; j < p; j++ {
+		cj := c[j*p : j*p+j]
 		d := a[j*p+j]
-		for k := 0; k < j; k++ {
-			d -= c[j*p+k] * c[j*p+k]
+		for _, x := range cj {
+			d -= x * x
 		}
 		if !(d > 1e-13*a[j*p+j]) || !finite(d) {
 			return false
 		}
-		d = math.Sqrt(d)
-		c[j*p+j] = d
+		r := 1 / math.Sqrt(d)
+		c[j*p+j] = r
 		for i := j + 1; i < p; i++ {
+			ci := c[i*p : i*p+j]
 			v := a[i*p+j]
-			for k := 0; k < j; k++ {
-				v -= c[i*p+k] * c[j*p+k]
+			for k, x := range cj {
+				v -= ci[k] * x
 			}
-			c[i*p+j] = v / d
+			c[i*p+j] = v * r
 		}
 	}
 	return true
 }
 
-// forwardSubst solves c y = b in place for lower-triangular c.
-func forwardSubst(c, b []float64, p int) {
-	for i := 0; i < p; i++ {
+// forwardSubst solves C x = b for the lower-triangular C that cholesky left
+// in c (reciprocal diagonal); x may be b itself.
+func forwardSubst(c, b, x []float64, p int) {
+	c, b, x = c[:p*p], b[:p], x[:p]
+	for i := range x {
+		ci := c[i*p : i*p+i+1]
 		v := b[i]
-		for k := 0; k < i; k++ {
-			v -= c[i*p+k] * b[k]
+		for k, cik := range ci[:i] {
+			v -= cik * x[k]
 		}
-		b[i] = v / c[i*p+i]
+		x[i] = v * ci[i]
 	}
 }
 
-// cholSolve solves (c c^T) x = b in place.
-func cholSolve(c, b []float64, p int) {
-	forwardSubst(c, b, p)
+// cholSolve solves (C C^T) x = b; x may be b itself.
+func cholSolve(c, b, x []float64, p int) {
+	forwardSubst(c, b, x, p)
+	c, x = c[:p*p], x[:p]
 	for i := p - 1; i >= 0; i-- {
-		v := b[i]
+		v := x[i]
 		for k := i + 1; k < p; k++ {
-			v -= c[k*p+i] * b[k]
+			v -= c[k*p+i] * x[k]
 		}
-		b[i] = v / c[i*p+i]
+		x[i] = v * c[i*p+i]
 	}
 }
 
-func matVec(a, x, dst []float64, p int) {
-	for i := 0; i < p; i++ {
-		var sum float64
-		for k := 0; k < p; k++ {
-			sum += a[i*p+k] * x[k]
-		}
-		dst[i] = sum
+// The unrolled kernels for p = 2 below do the floating-point operations of
+// the general ones above in the same order; shift2 and mulVec2 also multiply
+// by the zeros of a, which leaves the same values as skipping them (up to
+// the sign of a zero).
+
+// shift2 sets f <- w a f a^T for 2 x 2 row-major a and f (see shiftF).
+func shift2(a *[4]float64, f []float64, w float64) {
+	f = f[:4]
+	a00, a01, a10, a11 := a[0], a[1], a[2], a[3]
+	f00, f01, f10, f11 := f[0], f[1], f[2], f[3]
+	// tmp = a f
+	t00, t01 := a00*f00+a01*f10, a00*f01+a01*f11
+	t10, t11 := a10*f00+a11*f10, a10*f01+a11*f11
+	// f = w tmp a^T: the lower half, mirrored.
+	n00 := w * (t00*a00 + t01*a01)
+	n10 := w * (t10*a00 + t11*a01)
+	n11 := w * (t10*a10 + t11*a11)
+	if n00 < 0 {
+		n00 = 0 // a rounding-negative diagonal, see shiftF
 	}
+	if n11 < 0 {
+		n11 = 0
+	}
+	f[0], f[1], f[2], f[3] = n00, n10, n10, n11
+}
+
+// mulVec2 sets dst = a x for 2 x 2 row-major a (see sparseRows.mulVec).
+func mulVec2(a *[4]float64, x, dst []float64) {
+	x, dst = x[:2], dst[:2]
+	x0, x1 := x[0], x[1]
+	dst[0], dst[1] = a[0]*x0+a[1]*x1, a[2]*x0+a[3]*x1
+}
+
+// cholesky2 is cholesky for p = 2.
+func cholesky2(a, c []float64) bool {
+	a, c = a[:4], c[:4]
+	d := a[0]
+	if !(d > 1e-13*a[0]) || !finite(d) {
+		return false
+	}
+	r := 1 / math.Sqrt(d)
+	c[0] = r
+	c10 := a[2] * r
+	c[2] = c10
+	d = a[3] - c10*c10
+	if !(d > 1e-13*a[3]) || !finite(d) {
+		return false
+	}
+	c[3] = 1 / math.Sqrt(d)
+	return true
+}
+
+// forwardSubst2 is forwardSubst for p = 2.
+func forwardSubst2(c, b, x []float64) {
+	c, b, x = c[:4], b[:2], x[:2]
+	x0 := b[0] * c[0]
+	x[0], x[1] = x0, (b[1]-c[2]*x0)*c[3]
+}
+
+// cholSolve2 is cholSolve for p = 2.
+func cholSolve2(c, b, x []float64) {
+	forwardSubst2(c, b, x)
+	c, x = c[:4], x[:2]
+	x1 := x[1] * c[3]
+	x[0], x[1] = (x[0]-c[2]*x1)*c[0], x1
 }
 
 func dot(a, b []float64) float64 {
@@ -626,7 +853,7 @@ func dot(a, b []float64) float64 {
 	return s
 }
 
-func finite(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+func finite(x float64) bool { return x-x == 0 }
 
 func allFinite(xs []float64) bool {
 	for _, x := range xs {
