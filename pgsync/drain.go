@@ -78,12 +78,15 @@ JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.
 ORDER BY s.tracker_id, s.series_key
 FOR UPDATE OF s`
 
-// pointsSQL loads the points after a given bucket for many series at once,
-// with when each bucket ends by the tracker's calendar.
+// pointsSQL loads the points after a given bucket for many series at once.
+// When each bucket ends comes from the Go calendar (Tracker.bucketEnd);
+// only a series flagged sql_ends (a tracker whose zone Go cannot load) gets
+// it from sidetrend.bucket_start, which cost a third of this statement when
+// computed for every point.
 const pointsSQL = `
 SELECT p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v,
-       sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) AS ends
-FROM unnest($1::int[], $2::text[], $3::bigint[]) AS q(tid, key, after)
+       CASE WHEN q.sql_ends THEN sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) END AS ends
+FROM unnest($1::int[], $2::text[], $3::bigint[], $4::bool[]) AS q(tid, key, after, sql_ends)
 JOIN sidetrend.trackers t ON t.id = q.tid
 -- LATERAL with OFFSET 0 keeps the index condition on all three key columns
 -- even in a generic plan made while the points table was never analysed.
@@ -92,18 +95,6 @@ CROSS JOIN LATERAL (
     WHERE p.tracker_id = q.tid AND p.series_key = q.key AND p.bucket > q.after
     OFFSET 0) p
 ORDER BY 1, 2, 3`
-
-const updateSeriesSQL = `
-UPDATE sidetrend.series SET
-    folded_through = $3, first_bucket = $4, points = $5, state = $6, ready = $7, rebuild = false,
-    pending_due = $8, updated_at = now(), lambda = $9,
-    yhat = $10, lo80 = $11, hi80 = $12, lo95 = $13, hi95 = $14, cum_yhat = $15, cum_lo95 = $16, cum_hi95 = $17,
-    level = $18, slope = $19, slope_se = $20, sigma = $21,
-    n_errors = $22, mae = $23, rmse = $24, mape = $25, bias = $26, coverage80 = $27, coverage95 = $28,
-    last_error = $29, last_direction = $30
-WHERE tracker_id = $1 AND series_key = $2`
-
-const deleteSeriesSQL = `DELETE FROM sidetrend.series WHERE tracker_id = $1 AND series_key = $2`
 
 // dueSQL finds series with work and no new change: a bucket whose end the
 // clock has passed, or a rebuild asked for.
@@ -512,7 +503,7 @@ type point struct {
 	min    *float64
 	max    *float64
 	last   *float64
-	ends   time.Time
+	ends   *time.Time // only when the tracker's calendar is not in Go
 }
 
 // advance locks the given series, loads their states and new points, folds
@@ -542,14 +533,112 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	for i, id := range ids {
 		tids[i], keys[i] = int32(id.tracker), id.key
 	}
-	if _, err := tx.Exec(ctx, ensureSeriesSQL, tids, keys); err != nil {
-		return fmt.Errorf("create series rows: %w", err)
+	work := make(map[seriesID]*seriesWork, len(ids))
+	if err := s.lockSeries(ctx, tx, tids, keys, minTouched, work); err != nil {
+		return err
 	}
+	if len(work) < len(ids) {
+		// Series seen for the first time: create their rows, then lock
+		// them. (Steady work finds every row and skips this.)
+		var ntids []int32
+		var nkeys []string
+		for i, id := range ids {
+			if work[id] == nil {
+				ntids, nkeys = append(ntids, tids[i]), append(nkeys, keys[i])
+			}
+		}
+		if _, err := tx.Exec(ctx, ensureSeriesSQL, ntids, nkeys); err != nil {
+			return fmt.Errorf("create series rows: %w", err)
+		}
+		if err := s.lockSeries(ctx, tx, ntids, nkeys, minTouched, work); err != nil {
+			return err
+		}
+	}
+
+	after := make([]int64, len(ids))
+	sqlEnds := make([]bool, len(ids))
+	for i, id := range ids {
+		w := work[id]
+		after[i] = math.MinInt64
+		sqlEnds[i] = s.trackers[id.tracker].calErr != nil
+		if w != nil && !w.rebuild && w.hasFold {
+			after[i] = w.folded
+		}
+	}
+	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after, sqlEnds)
+	if err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+	for prow.Next() {
+		var tid int32
+		var key string
+		var p point
+		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
+			prow.Close()
+			return fmt.Errorf("load points: %w", err)
+		}
+		if w := work[seriesID{int(tid), key}]; w != nil {
+			w.points = append(w.points, p)
+		}
+	}
+	if err := prow.Err(); err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+
+	now := s.now()
+	maxH := 0
+	for _, t := range s.trackers {
+		maxH = max(maxH, t.Horizon)
+	}
+	out := newSeriesRows(len(ids), maxH)
+	var gone seriesRows // only tid and key: series with no point left
+	var surprises []Surprise
+	var history []IssuedForecast
+	for _, id := range ids {
+		w := work[id]
+		if w == nil {
+			continue
+		}
+		if w.rebuild {
+			s.stats.Rebuilds++
+		}
+		keep, err := s.fold(w, now, out)
+		if err != nil {
+			return err
+		}
+		if !keep {
+			gone.tid, gone.key = append(gone.tid, int32(id.tracker)), append(gone.key, id.key)
+			continue
+		}
+		s.stats.Series++
+		surprises = append(surprises, w.watch.Events...)
+		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
+			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
+		}
+	}
+	if out.len() > 0 {
+		if _, err := tx.Exec(ctx, updateSeriesSQL, out.args()...); err != nil {
+			return fmt.Errorf("write series: %w", err)
+		}
+	}
+	if gone.len() > 0 {
+		if _, err := tx.Exec(ctx, deleteSeriesSQL, gone.tid, gone.key); err != nil {
+			return fmt.Errorf("delete empty series: %w", err)
+		}
+	}
+	if err := RecordSurprises(ctx, tx, surprises); err != nil {
+		return err
+	}
+	return RecordHistory(ctx, tx, history)
+}
+
+// lockSeries locks the series rows of tids and keys that exist, decodes
+// their states and adds them to work.
+func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys []string, minTouched map[seriesID]int64, work map[seriesID]*seriesWork) error {
 	rows, err := tx.Query(ctx, lockSeriesSQL, tids, keys)
 	if err != nil {
 		return fmt.Errorf("lock series: %w", err)
 	}
-	work := make(map[seriesID]*seriesWork, len(ids))
 	for rows.Next() {
 		var tid int32
 		var key string
@@ -599,72 +688,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	if err := rows.Err(); err != nil {
 		return fmt.Errorf("lock series: %w", err)
 	}
-
-	after := make([]int64, len(ids))
-	for i, id := range ids {
-		w := work[id]
-		after[i] = math.MinInt64
-		if w != nil && !w.rebuild && w.hasFold {
-			after[i] = w.folded
-		}
-	}
-	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after)
-	if err != nil {
-		return fmt.Errorf("load points: %w", err)
-	}
-	for prow.Next() {
-		var tid int32
-		var key string
-		var p point
-		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
-			prow.Close()
-			return fmt.Errorf("load points: %w", err)
-		}
-		if w := work[seriesID{int(tid), key}]; w != nil {
-			w.points = append(w.points, p)
-		}
-	}
-	if err := prow.Err(); err != nil {
-		return fmt.Errorf("load points: %w", err)
-	}
-
-	batch := &pgx.Batch{}
-	now := s.now()
-	var surprises []Surprise
-	var history []IssuedForecast
-	for _, id := range ids {
-		w := work[id]
-		if w == nil {
-			continue
-		}
-		if w.rebuild {
-			s.stats.Rebuilds++
-		}
-		upd, err := s.fold(w, now)
-		if err != nil {
-			return err
-		}
-		if upd == nil {
-			batch.Queue(deleteSeriesSQL, int32(id.tracker), id.key)
-			continue
-		}
-		batch.Queue(updateSeriesSQL, upd...)
-		s.stats.Series++
-		surprises = append(surprises, w.watch.Events...)
-		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
-			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
-		}
-	}
-	if batch.Len() == 0 {
-		return nil
-	}
-	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
-		return fmt.Errorf("write series: %w", err)
-	}
-	if err := RecordSurprises(ctx, tx, surprises); err != nil {
-		return err
-	}
-	return RecordHistory(ctx, tx, history)
+	return nil
 }
 
 // value maps a bucket aggregate to the number the estimator sees; ok is
@@ -697,23 +721,23 @@ func deref(x *float64) (float64, bool) {
 	return *x, true
 }
 
-// fold advances w's state over its due points and returns the arguments of
-// updateSeriesSQL, or nil when the series has no point left at all.
-func (s *Syncer) fold(w *seriesWork, now time.Time) ([]any, error) {
+// fold advances w's state over its due points and adds its new row to out;
+// it reports false (and adds nothing) when the series has no point left.
+func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
 	t := w.tracker
 	if w.rebuild || w.state == nil {
 		st, err := estimator.NewState(w.spec)
 		if err != nil {
-			return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
+			return false, fmt.Errorf("tracker %q: %w", t.Name, err)
 		}
 		// A replay starts from all points: they were loaded from the first
 		// bucket on, because after was MinInt64 for this series.
 		w.state, w.hasFold = st, false
 	}
-	return s.foldPoints(w, now)
+	return s.foldPoints(w, now, out)
 }
 
-func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
+func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
 	t := w.tracker
 	var lastErr *string
 	// Points with a value, in bucket order; the newest one is folded only
@@ -725,9 +749,18 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 		}
 	}
 	var pendingDue *time.Time
-	if n := len(vals); n > 0 && now.Before(vals[n-1].ends) {
-		pendingDue = &vals[n-1].ends
-		vals = vals[:n-1]
+	if n := len(vals); n > 0 {
+		ends, ok := t.bucketEnd(vals[n-1].bucket)
+		if !ok && vals[n-1].ends != nil {
+			ends, ok = *vals[n-1].ends, true
+		}
+		if !ok {
+			return false, fmt.Errorf("tracker %q: no end for bucket %d", t.Name, vals[n-1].bucket)
+		}
+		if now.Before(ends) {
+			pendingDue = &ends
+			vals = vals[:n-1]
+		}
 	}
 	if !w.hasFold && len(vals) > 0 {
 		w.first = vals[0].bucket
@@ -737,7 +770,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 		if w.hasFold {
 			if gap := p.bucket - w.folded - 1; gap > 0 {
 				if err := s.fillGap(w, w.folded+1, gap); err != nil {
-					return nil, err
+					return false, err
 				}
 			}
 		}
@@ -749,20 +782,22 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 			msg := fmt.Sprintf("bucket %d: %v", p.bucket, err)
 			lastErr = &msg
 			if err := w.state.Skip(1); err != nil {
-				return nil, err
+				return false, err
 			}
 		}
 		w.folded, w.hasFold = p.bucket, true
 	}
 	if !w.hasFold {
 		if pendingDue == nil {
-			return nil, nil
+			return false, nil
 		}
 		// Nothing folded yet, one open bucket: keep the row so the clock
 		// sweep finds it.
-		return seriesArgs(w, nil, pendingDue, lastErr), nil
+		out.add(w, nil, pendingDue, lastErr)
+		return true, nil
 	}
-	return seriesArgs(w, w.state, pendingDue, lastErr), nil
+	w.served = out.add(w, w.state, pendingDue, lastErr)
+	return true, nil
 }
 
 // fillGap advances over buckets without rows: zeros when the tracker says
@@ -793,49 +828,4 @@ func nullable(x float64) *float64 {
 		return nil
 	}
 	return &x
-}
-
-func nullables(xs []float64) []*float64 {
-	out := make([]*float64, len(xs))
-	for i, x := range xs {
-		out[i] = nullable(x)
-	}
-	return out
-}
-
-func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastErr *string) []any {
-	t := w.tracker
-	args := make([]any, 30)
-	if w.watch != nil && w.watch.LastDirection != "" {
-		args[29] = w.watch.LastDirection
-	}
-	args[0], args[1] = int32(w.id.tracker), w.id.key
-	args[7], args[8], args[28] = pendingDue, w.lambda, lastErr
-	if st == nil {
-		args[4], args[6] = int64(0), false
-		return args
-	}
-	blob, _ := st.MarshalBinary()
-	args[2], args[3], args[4], args[5] = w.folded, w.first, st.Count(), blob
-	ready := st.Ready()
-	args[6] = ready
-	if !ready {
-		return args
-	}
-	fc, err := st.Forecast(t.Horizon)
-	if err == nil {
-		w.served = fc
-		args[9], args[10], args[11] = nullables(fc.Yhat), nullables(fc.Lo80), nullables(fc.Hi80)
-		args[12], args[13], args[14] = nullables(fc.Lo95), nullables(fc.Hi95), nullables(fc.CumYhat)
-		args[15], args[16] = nullables(fc.CumLo95), nullables(fc.CumHi95)
-		args[20] = nullable(fc.Sigma)
-	}
-	if sl, err := st.Slope(); err == nil {
-		args[17], args[18], args[19] = nullable(sl.Level), nullable(sl.Slope), nullable(sl.SE)
-	}
-	es := st.Errors()
-	args[21] = es.N
-	args[22], args[23], args[24] = nullable(es.MAE), nullable(es.RMSE), nullable(es.MAPE)
-	args[25], args[26], args[27] = nullable(es.Bias), nullable(es.Cov80), nullable(es.Cov95)
-	return args
 }
