@@ -75,7 +75,7 @@ ON CONFLICT (tracker_id, series_key) DO NOTHING`
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
 // that two sidecars never wait on each other in a cycle.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction
+SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -510,6 +510,11 @@ type seriesWork struct {
 	first      int64
 	rebuild    bool
 	points     []point
+
+	oldPendingDue *time.Time // pending_due as stored
+	// unchanged: nothing was folded and the row as stored is still right
+	// (rows that only add to a bucket still open), so it is not rewritten.
+	unchanged bool
 }
 
 type point struct {
@@ -632,6 +637,9 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			gone.tid, gone.key = append(gone.tid, int32(id.tracker)), append(gone.key, id.key)
 			continue
 		}
+		if w.unchanged {
+			continue
+		}
 		s.stats.Series++
 		surprises = append(surprises, w.watch.Events...)
 		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
@@ -669,12 +677,13 @@ func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys [
 		var rebuild bool
 		var lambda *float64
 		var lastDir *string
-		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir); err != nil {
+		var pendingDue *time.Time
+		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir, &pendingDue); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
 		id := seriesID{int(tid), key}
-		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda}
+		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda, oldPendingDue: pendingDue}
 		w.spec = w.tracker.Spec
 		if lambda != nil {
 			w.spec.Lambda = *lambda // tuned for this series
@@ -783,6 +792,10 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 			pendingDue = &ends
 			vals = vals[:n-1]
 		}
+	}
+	if len(vals) == 0 && !w.rebuild && pendingDue != nil && w.oldPendingDue != nil && pendingDue.Equal(*w.oldPendingDue) {
+		w.unchanged = true
+		return true, nil
 	}
 	if !w.hasFold && len(vals) > 0 {
 		w.first = vals[0].bucket
