@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"maps"
 	"math"
 	"slices"
 	"sort"
@@ -15,6 +16,7 @@ import (
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgconn"
 	"github.com/jackc/pgx/v5/pgxpool"
+	"golang.org/x/sync/errgroup"
 
 	"github.com/sidetrend/sidetrend/estimator"
 )
@@ -107,6 +109,10 @@ SELECT s.tracker_id, s.series_key FROM sidetrend.series s
 WHERE s.rebuild OR s.pending_due <= $1
 ORDER BY 1, 2 LIMIT 1000`
 
+// DefaultWorkers is how many transactions drain a backlog at once: two
+// measured best on this project's 2-core benchmark machine (README).
+const DefaultWorkers = 2
+
 // Syncer drains the change log and keeps series states current. It holds no
 // state between batches but a cache of trackers; it is safe for one
 // goroutine at a time, and many Syncers (in many processes) may work on one
@@ -119,8 +125,12 @@ type Syncer struct {
 	trackers map[int]*Tracker
 	stats    Stats
 
-	// OnBatch, if set, is called after every committed batch.
+	// OnBatch, if set, is called after every committed batch, from several
+	// goroutines at once when Workers > 1.
 	OnBatch func(BatchInfo)
+	// Workers is how many transactions drain a backlog at once (see
+	// drainLog); NewSyncer sets DefaultWorkers.
+	Workers int
 	// Progress, if set, is told about long work: backfills and replays.
 	Progress Progress
 	// Tune makes CatchUp end with TunePending: trackers just backfilled (and
@@ -157,12 +167,21 @@ type Stats struct {
 	Retries   int64 // batches retried after a deadlock or serialization failure
 }
 
+func (st *Stats) add(o Stats) {
+	st.Changes += o.Changes
+	st.Batches += o.Batches
+	st.Series += o.Series
+	st.Rebuilds += o.Rebuilds
+	st.Backfills += o.Backfills
+	st.Retries += o.Retries
+}
+
 // NewSyncer returns a Syncer on pool.
 func NewSyncer(pool *pgxpool.Pool, log *slog.Logger) *Syncer {
 	if log == nil {
 		log = slog.New(slog.DiscardHandler)
 	}
-	return &Syncer{pool: pool, log: log, now: time.Now}
+	return &Syncer{pool: pool, log: log, now: time.Now, Workers: DefaultWorkers}
 }
 
 // Stats returns the counts so far.
@@ -184,14 +203,8 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	if err := s.resync(ctx); err != nil {
 		return err
 	}
-	for {
-		n, err := s.retry(ctx, s.drainBatch)
-		if err != nil {
-			return err
-		}
-		if n == 0 {
-			break
-		}
+	if err := s.drainLog(ctx); err != nil {
+		return err
 	}
 	if s.Progress != nil {
 		var pending int64
@@ -217,6 +230,46 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 		return s.drainDue(ctx) // replay the series whose lambda changed
 	}
 	return nil
+}
+
+// drainLog drains the change log until it is empty. While batches come
+// back full there is a backlog, and Workers - 1 more workers drain beside
+// this Syncer, each a Syncer of its own with its own connection and
+// transactions, so that one worker's Go work (states and forecasts)
+// overlaps another's time in Postgres. Their claims never overlap (SKIP
+// LOCKED); a series that two batches touch is locked by the first and
+// waited for by the second, which then reads the state the first committed.
+func (s *Syncer) drainLog(ctx context.Context) error {
+	n, err := s.retry(ctx, s.drainBatch)
+	if err != nil || n == 0 {
+		return err
+	}
+	if n < BatchSize || s.Workers <= 1 {
+		return s.drainSerial(ctx)
+	}
+	g, gctx := errgroup.WithContext(ctx)
+	helpers := make([]*Syncer, s.Workers-1)
+	for i := range helpers {
+		h := &Syncer{pool: s.pool, log: s.log, now: s.now, trackers: maps.Clone(s.trackers), OnBatch: s.OnBatch}
+		helpers[i] = h
+		g.Go(func() error { return h.drainSerial(gctx) })
+	}
+	g.Go(func() error { return s.drainSerial(gctx) })
+	err = g.Wait()
+	for _, h := range helpers {
+		s.stats.add(h.stats)
+	}
+	return err
+}
+
+// drainSerial drains batches until one finds the change log empty.
+func (s *Syncer) drainSerial(ctx context.Context) error {
+	for {
+		n, err := s.retry(ctx, s.drainBatch)
+		if err != nil || n == 0 {
+			return err
+		}
+	}
 }
 
 func (s *Syncer) drainDue(ctx context.Context) error {
