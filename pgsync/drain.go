@@ -1,11 +1,14 @@
 package pgsync
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
 	"log/slog"
+	"maps"
 	"math"
+	"slices"
 	"sort"
 	"strconv"
 	"time"
@@ -13,6 +16,7 @@ import (
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgconn"
 	"github.com/jackc/pgx/v5/pgxpool"
+	"golang.org/x/sync/errgroup"
 
 	"github.com/sidetrend/sidetrend/estimator"
 )
@@ -30,8 +34,9 @@ const BatchSize = 2000
 var claimSQL = `
 WITH claimed AS (
     DELETE FROM sidetrend.changes c
-    -- ctid = ANY(ARRAY(...)) always plans as a TID scan; the IN form was
-    -- cached as a nested-loop semi join that re-ran the LIMIT subquery per row.
+    -- ctid = ANY(ARRAY(...)) plans as a TID scan (with enable_seqscan off,
+    -- see drainBatch); the IN form was cached as a nested-loop semi join
+    -- that re-ran the LIMIT subquery per row.
     WHERE c.ctid = ANY (ARRAY(SELECT ctid FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(BatchSize) + ` FOR UPDATE SKIP LOCKED))
     RETURNING c.tracker_id, c.series_key, c.bucket, c.n, c.sum, c.min, c.max, c.last_t, c.last_v, c.retract
 ), agg AS (
@@ -72,38 +77,30 @@ ON CONFLICT (tracker_id, series_key) DO NOTHING`
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
 // that two sidecars never wait on each other in a cycle.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction
+SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
 FOR UPDATE OF s`
 
 // pointsSQL loads the points after a given bucket for many series at once,
-// with when each bucket ends by the tracker's calendar.
+// in no particular order (advance sorts each series' points: a sort here
+// cost as much as the rest of the statement).
+// When each bucket ends comes from the Go calendar (Tracker.bucketEnd);
+// only a series flagged sql_ends (a tracker whose zone Go cannot load) gets
+// it from sidetrend.bucket_start, which cost a third of this statement when
+// computed for every point.
 const pointsSQL = `
 SELECT p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v,
-       sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) AS ends
-FROM unnest($1::int[], $2::text[], $3::bigint[]) AS q(tid, key, after)
+       CASE WHEN q.sql_ends THEN sidetrend.bucket_start(p.bucket + 1, t.bucket, t.tz) END AS ends
+FROM unnest($1::int[], $2::text[], $3::bigint[], $4::bool[]) AS q(tid, key, after, sql_ends)
 JOIN sidetrend.trackers t ON t.id = q.tid
 -- LATERAL with OFFSET 0 keeps the index condition on all three key columns
 -- even in a generic plan made while the points table was never analysed.
 CROSS JOIN LATERAL (
     SELECT * FROM sidetrend.points p
     WHERE p.tracker_id = q.tid AND p.series_key = q.key AND p.bucket > q.after
-    OFFSET 0) p
-ORDER BY 1, 2, 3`
-
-const updateSeriesSQL = `
-UPDATE sidetrend.series SET
-    folded_through = $3, first_bucket = $4, points = $5, state = $6, ready = $7, rebuild = false,
-    pending_due = $8, updated_at = now(), lambda = $9,
-    yhat = $10, lo80 = $11, hi80 = $12, lo95 = $13, hi95 = $14, cum_yhat = $15, cum_lo95 = $16, cum_hi95 = $17,
-    level = $18, slope = $19, slope_se = $20, sigma = $21,
-    n_errors = $22, mae = $23, rmse = $24, mape = $25, bias = $26, coverage80 = $27, coverage95 = $28,
-    last_error = $29, last_direction = $30
-WHERE tracker_id = $1 AND series_key = $2`
-
-const deleteSeriesSQL = `DELETE FROM sidetrend.series WHERE tracker_id = $1 AND series_key = $2`
+    OFFSET 0) p`
 
 // dueSQL finds series with work and no new change: a bucket whose end the
 // clock has passed, or a rebuild asked for.
@@ -111,6 +108,10 @@ const dueSQL = `
 SELECT s.tracker_id, s.series_key FROM sidetrend.series s
 WHERE s.rebuild OR s.pending_due <= $1
 ORDER BY 1, 2 LIMIT 1000`
+
+// DefaultWorkers is how many transactions drain a backlog at once: two
+// measured best on this project's 2-core benchmark machine (README).
+const DefaultWorkers = 2
 
 // Syncer drains the change log and keeps series states current. It holds no
 // state between batches but a cache of trackers; it is safe for one
@@ -124,8 +125,12 @@ type Syncer struct {
 	trackers map[int]*Tracker
 	stats    Stats
 
-	// OnBatch, if set, is called after every committed batch.
+	// OnBatch, if set, is called after every committed batch, from several
+	// goroutines at once when Workers > 1.
 	OnBatch func(BatchInfo)
+	// Workers is how many transactions drain a backlog at once (see
+	// drainLog); NewSyncer sets DefaultWorkers.
+	Workers int
 	// Progress, if set, is told about long work: backfills and replays.
 	Progress Progress
 	// Tune makes CatchUp end with TunePending: trackers just backfilled (and
@@ -162,12 +167,21 @@ type Stats struct {
 	Retries   int64 // batches retried after a deadlock or serialization failure
 }
 
+func (st *Stats) add(o Stats) {
+	st.Changes += o.Changes
+	st.Batches += o.Batches
+	st.Series += o.Series
+	st.Rebuilds += o.Rebuilds
+	st.Backfills += o.Backfills
+	st.Retries += o.Retries
+}
+
 // NewSyncer returns a Syncer on pool.
 func NewSyncer(pool *pgxpool.Pool, log *slog.Logger) *Syncer {
 	if log == nil {
 		log = slog.New(slog.DiscardHandler)
 	}
-	return &Syncer{pool: pool, log: log, now: time.Now}
+	return &Syncer{pool: pool, log: log, now: time.Now, Workers: DefaultWorkers}
 }
 
 // Stats returns the counts so far.
@@ -189,14 +203,8 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	if err := s.resync(ctx); err != nil {
 		return err
 	}
-	for {
-		n, err := s.retry(ctx, s.drainBatch)
-		if err != nil {
-			return err
-		}
-		if n == 0 {
-			break
-		}
+	if err := s.drainLog(ctx); err != nil {
+		return err
 	}
 	if s.Progress != nil {
 		var pending int64
@@ -222,6 +230,46 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 		return s.drainDue(ctx) // replay the series whose lambda changed
 	}
 	return nil
+}
+
+// drainLog drains the change log until it is empty. While batches come
+// back full there is a backlog, and Workers - 1 more workers drain beside
+// this Syncer, each a Syncer of its own with its own connection and
+// transactions, so that one worker's Go work (states and forecasts)
+// overlaps another's time in Postgres. Their claims never overlap (SKIP
+// LOCKED); a series that two batches touch is locked by the first and
+// waited for by the second, which then reads the state the first committed.
+func (s *Syncer) drainLog(ctx context.Context) error {
+	n, err := s.retry(ctx, s.drainBatch)
+	if err != nil || n == 0 {
+		return err
+	}
+	if n < BatchSize || s.Workers <= 1 {
+		return s.drainSerial(ctx)
+	}
+	g, gctx := errgroup.WithContext(ctx)
+	helpers := make([]*Syncer, s.Workers-1)
+	for i := range helpers {
+		h := &Syncer{pool: s.pool, log: s.log, now: s.now, trackers: maps.Clone(s.trackers), OnBatch: s.OnBatch}
+		helpers[i] = h
+		g.Go(func() error { return h.drainSerial(gctx) })
+	}
+	g.Go(func() error { return s.drainSerial(gctx) })
+	err = g.Wait()
+	for _, h := range helpers {
+		s.stats.add(h.stats)
+	}
+	return err
+}
+
+// drainSerial drains batches until one finds the change log empty.
+func (s *Syncer) drainSerial(ctx context.Context) error {
+	for {
+		n, err := s.retry(ctx, s.drainBatch)
+		if err != nil || n == 0 {
+			return err
+		}
+	}
 }
 
 func (s *Syncer) drainDue(ctx context.Context) error {
@@ -319,6 +367,15 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("begin drain: %w", err)
 	}
 	defer tx.Rollback(context.WithoutCancel(ctx))
+	// The change log is a queue: its statistics, from whenever it was last
+	// analysed, say nothing about its size now. Planned as if empty, the
+	// claim scanned the whole log and compared every ctid with every
+	// claimed one (175 ms of a 230 ms batch, measured); with sequential
+	// scans off it takes the id index and a TID scan whatever the
+	// statistics say. The plan is cached under that setting.
+	if _, err := tx.Exec(ctx, `SET LOCAL enable_seqscan = off`); err != nil {
+		return 0, fmt.Errorf("claim changes: %w", err)
+	}
 	rows, err := tx.Query(ctx, claimSQL)
 	if err != nil {
 		return 0, fmt.Errorf("claim changes: %w", err)
@@ -345,6 +402,9 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 	}
 	if claimed == 0 {
 		return 0, nil
+	}
+	if _, err := tx.Exec(ctx, `SET LOCAL enable_seqscan = on`); err != nil {
+		return 0, fmt.Errorf("claim changes: %w", err)
 	}
 	if err := s.recomputeDirty(ctx, tx, touched); err != nil {
 		return 0, err
@@ -503,6 +563,11 @@ type seriesWork struct {
 	first      int64
 	rebuild    bool
 	points     []point
+
+	oldPendingDue *time.Time // pending_due as stored
+	// unchanged: nothing was folded and the row as stored is still right
+	// (rows that only add to a bucket still open), so it is not rewritten.
+	unchanged bool
 }
 
 type point struct {
@@ -512,7 +577,7 @@ type point struct {
 	min    *float64
 	max    *float64
 	last   *float64
-	ends   time.Time
+	ends   *time.Time // only when the tracker's calendar is not in Go
 }
 
 // advance locks the given series, loads their states and new points, folds
@@ -542,14 +607,121 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	for i, id := range ids {
 		tids[i], keys[i] = int32(id.tracker), id.key
 	}
-	if _, err := tx.Exec(ctx, ensureSeriesSQL, tids, keys); err != nil {
-		return fmt.Errorf("create series rows: %w", err)
+	work := make(map[seriesID]*seriesWork, len(ids))
+	if err := s.lockSeries(ctx, tx, tids, keys, minTouched, work); err != nil {
+		return err
 	}
+	if len(work) < len(ids) {
+		// Series seen for the first time: create their rows, then lock
+		// them. (Steady work finds every row and skips this.)
+		var ntids []int32
+		var nkeys []string
+		for i, id := range ids {
+			if work[id] == nil {
+				ntids, nkeys = append(ntids, tids[i]), append(nkeys, keys[i])
+			}
+		}
+		if _, err := tx.Exec(ctx, ensureSeriesSQL, ntids, nkeys); err != nil {
+			return fmt.Errorf("create series rows: %w", err)
+		}
+		if err := s.lockSeries(ctx, tx, ntids, nkeys, minTouched, work); err != nil {
+			return err
+		}
+	}
+
+	after := make([]int64, len(ids))
+	sqlEnds := make([]bool, len(ids))
+	for i, id := range ids {
+		w := work[id]
+		after[i] = math.MinInt64
+		sqlEnds[i] = s.trackers[id.tracker].calErr != nil
+		if w != nil && !w.rebuild && w.hasFold {
+			after[i] = w.folded
+		}
+	}
+	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after, sqlEnds)
+	if err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+	for prow.Next() {
+		var tid int32
+		var key string
+		var p point
+		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
+			prow.Close()
+			return fmt.Errorf("load points: %w", err)
+		}
+		if w := work[seriesID{int(tid), key}]; w != nil {
+			w.points = append(w.points, p)
+		}
+	}
+	if err := prow.Err(); err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+	byBucket := func(a, b point) int { return cmp.Compare(a.bucket, b.bucket) }
+	for _, w := range work {
+		if !slices.IsSortedFunc(w.points, byBucket) {
+			slices.SortFunc(w.points, byBucket)
+		}
+	}
+
+	now := s.now()
+	maxH := 0
+	for _, t := range s.trackers {
+		maxH = max(maxH, t.Horizon)
+	}
+	out := newSeriesRows(len(ids), maxH)
+	var gone seriesRows // only tid and key: series with no point left
+	var surprises []Surprise
+	var history []IssuedForecast
+	for _, id := range ids {
+		w := work[id]
+		if w == nil {
+			continue
+		}
+		if w.rebuild {
+			s.stats.Rebuilds++
+		}
+		keep, err := s.fold(w, now, out)
+		if err != nil {
+			return err
+		}
+		if !keep {
+			gone.tid, gone.key = append(gone.tid, int32(id.tracker)), append(gone.key, id.key)
+			continue
+		}
+		if w.unchanged {
+			continue
+		}
+		s.stats.Series++
+		surprises = append(surprises, w.watch.Events...)
+		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
+			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
+		}
+	}
+	if out.len() > 0 {
+		if _, err := tx.Exec(ctx, updateSeriesSQL, out.args()...); err != nil {
+			return fmt.Errorf("write series: %w", err)
+		}
+	}
+	if gone.len() > 0 {
+		if _, err := tx.Exec(ctx, deleteSeriesSQL, gone.tid, gone.key); err != nil {
+			return fmt.Errorf("delete empty series: %w", err)
+		}
+	}
+	if err := RecordSurprises(ctx, tx, surprises); err != nil {
+		return err
+	}
+	return RecordHistory(ctx, tx, history)
+}
+
+// lockSeries locks the series rows of tids and keys that exist, decodes
+// their states and adds them to work.
+func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys []string, minTouched map[seriesID]int64, work map[seriesID]*seriesWork) error {
 	rows, err := tx.Query(ctx, lockSeriesSQL, tids, keys)
 	if err != nil {
 		return fmt.Errorf("lock series: %w", err)
 	}
-	work := make(map[seriesID]*seriesWork, len(ids))
 	for rows.Next() {
 		var tid int32
 		var key string
@@ -558,12 +730,13 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		var rebuild bool
 		var lambda *float64
 		var lastDir *string
-		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir); err != nil {
+		var pendingDue *time.Time
+		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir, &pendingDue); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
 		id := seriesID{int(tid), key}
-		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda}
+		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda, oldPendingDue: pendingDue}
 		w.spec = w.tracker.Spec
 		if lambda != nil {
 			w.spec.Lambda = *lambda // tuned for this series
@@ -599,72 +772,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	if err := rows.Err(); err != nil {
 		return fmt.Errorf("lock series: %w", err)
 	}
-
-	after := make([]int64, len(ids))
-	for i, id := range ids {
-		w := work[id]
-		after[i] = math.MinInt64
-		if w != nil && !w.rebuild && w.hasFold {
-			after[i] = w.folded
-		}
-	}
-	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after)
-	if err != nil {
-		return fmt.Errorf("load points: %w", err)
-	}
-	for prow.Next() {
-		var tid int32
-		var key string
-		var p point
-		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
-			prow.Close()
-			return fmt.Errorf("load points: %w", err)
-		}
-		if w := work[seriesID{int(tid), key}]; w != nil {
-			w.points = append(w.points, p)
-		}
-	}
-	if err := prow.Err(); err != nil {
-		return fmt.Errorf("load points: %w", err)
-	}
-
-	batch := &pgx.Batch{}
-	now := s.now()
-	var surprises []Surprise
-	var history []IssuedForecast
-	for _, id := range ids {
-		w := work[id]
-		if w == nil {
-			continue
-		}
-		if w.rebuild {
-			s.stats.Rebuilds++
-		}
-		upd, err := s.fold(w, now)
-		if err != nil {
-			return err
-		}
-		if upd == nil {
-			batch.Queue(deleteSeriesSQL, int32(id.tracker), id.key)
-			continue
-		}
-		batch.Queue(updateSeriesSQL, upd...)
-		s.stats.Series++
-		surprises = append(surprises, w.watch.Events...)
-		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
-			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
-		}
-	}
-	if batch.Len() == 0 {
-		return nil
-	}
-	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
-		return fmt.Errorf("write series: %w", err)
-	}
-	if err := RecordSurprises(ctx, tx, surprises); err != nil {
-		return err
-	}
-	return RecordHistory(ctx, tx, history)
+	return nil
 }
 
 // value maps a bucket aggregate to the number the estimator sees; ok is
@@ -697,23 +805,23 @@ func deref(x *float64) (float64, bool) {
 	return *x, true
 }
 
-// fold advances w's state over its due points and returns the arguments of
-// updateSeriesSQL, or nil when the series has no point left at all.
-func (s *Syncer) fold(w *seriesWork, now time.Time) ([]any, error) {
+// fold advances w's state over its due points and adds its new row to out;
+// it reports false (and adds nothing) when the series has no point left.
+func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
 	t := w.tracker
 	if w.rebuild || w.state == nil {
 		st, err := estimator.NewState(w.spec)
 		if err != nil {
-			return nil, fmt.Errorf("tracker %q: %w", t.Name, err)
+			return false, fmt.Errorf("tracker %q: %w", t.Name, err)
 		}
 		// A replay starts from all points: they were loaded from the first
 		// bucket on, because after was MinInt64 for this series.
 		w.state, w.hasFold = st, false
 	}
-	return s.foldPoints(w, now)
+	return s.foldPoints(w, now, out)
 }
 
-func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
+func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
 	t := w.tracker
 	var lastErr *string
 	// Points with a value, in bucket order; the newest one is folded only
@@ -725,9 +833,22 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 		}
 	}
 	var pendingDue *time.Time
-	if n := len(vals); n > 0 && now.Before(vals[n-1].ends) {
-		pendingDue = &vals[n-1].ends
-		vals = vals[:n-1]
+	if n := len(vals); n > 0 {
+		ends, ok := t.bucketEnd(vals[n-1].bucket)
+		if !ok && vals[n-1].ends != nil {
+			ends, ok = *vals[n-1].ends, true
+		}
+		if !ok {
+			return false, fmt.Errorf("tracker %q: no end for bucket %d", t.Name, vals[n-1].bucket)
+		}
+		if now.Before(ends) {
+			pendingDue = &ends
+			vals = vals[:n-1]
+		}
+	}
+	if len(vals) == 0 && !w.rebuild && pendingDue != nil && w.oldPendingDue != nil && pendingDue.Equal(*w.oldPendingDue) {
+		w.unchanged = true
+		return true, nil
 	}
 	if !w.hasFold && len(vals) > 0 {
 		w.first = vals[0].bucket
@@ -737,7 +858,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 		if w.hasFold {
 			if gap := p.bucket - w.folded - 1; gap > 0 {
 				if err := s.fillGap(w, w.folded+1, gap); err != nil {
-					return nil, err
+					return false, err
 				}
 			}
 		}
@@ -749,20 +870,22 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time) ([]any, error) {
 			msg := fmt.Sprintf("bucket %d: %v", p.bucket, err)
 			lastErr = &msg
 			if err := w.state.Skip(1); err != nil {
-				return nil, err
+				return false, err
 			}
 		}
 		w.folded, w.hasFold = p.bucket, true
 	}
 	if !w.hasFold {
 		if pendingDue == nil {
-			return nil, nil
+			return false, nil
 		}
 		// Nothing folded yet, one open bucket: keep the row so the clock
 		// sweep finds it.
-		return seriesArgs(w, nil, pendingDue, lastErr), nil
+		out.add(w, nil, pendingDue, lastErr)
+		return true, nil
 	}
-	return seriesArgs(w, w.state, pendingDue, lastErr), nil
+	w.served = out.add(w, w.state, pendingDue, lastErr)
+	return true, nil
 }
 
 // fillGap advances over buckets without rows: zeros when the tracker says
@@ -793,49 +916,4 @@ func nullable(x float64) *float64 {
 		return nil
 	}
 	return &x
-}
-
-func nullables(xs []float64) []*float64 {
-	out := make([]*float64, len(xs))
-	for i, x := range xs {
-		out[i] = nullable(x)
-	}
-	return out
-}
-
-func seriesArgs(w *seriesWork, st *estimator.State, pendingDue *time.Time, lastErr *string) []any {
-	t := w.tracker
-	args := make([]any, 30)
-	if w.watch != nil && w.watch.LastDirection != "" {
-		args[29] = w.watch.LastDirection
-	}
-	args[0], args[1] = int32(w.id.tracker), w.id.key
-	args[7], args[8], args[28] = pendingDue, w.lambda, lastErr
-	if st == nil {
-		args[4], args[6] = int64(0), false
-		return args
-	}
-	blob, _ := st.MarshalBinary()
-	args[2], args[3], args[4], args[5] = w.folded, w.first, st.Count(), blob
-	ready := st.Ready()
-	args[6] = ready
-	if !ready {
-		return args
-	}
-	fc, err := st.Forecast(t.Horizon)
-	if err == nil {
-		w.served = fc
-		args[9], args[10], args[11] = nullables(fc.Yhat), nullables(fc.Lo80), nullables(fc.Hi80)
-		args[12], args[13], args[14] = nullables(fc.Lo95), nullables(fc.Hi95), nullables(fc.CumYhat)
-		args[15], args[16] = nullables(fc.CumLo95), nullables(fc.CumHi95)
-		args[20] = nullable(fc.Sigma)
-	}
-	if sl, err := st.Slope(); err == nil {
-		args[17], args[18], args[19] = nullable(sl.Level), nullable(sl.Slope), nullable(sl.SE)
-	}
-	es := st.Errors()
-	args[21] = es.N
-	args[22], args[23], args[24] = nullable(es.MAE), nullable(es.RMSE), nullable(es.MAPE)
-	args[25], args[26], args[27] = nullable(es.Bias), nullable(es.Cov80), nullable(es.Cov95)
-	return args
 }

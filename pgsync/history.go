@@ -30,10 +30,17 @@ func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Fo
 // insertHistorySQL keeps the first forecast served for a (series, issue
 // bucket, horizon): a replay that serves again at the same bucket does not
 // rewrite what users saw. Trackers with history_buckets = 0 keep nothing.
+// Like updateSeriesSQL it takes one flat float8[] per column, each issue's
+// part at [off+1 : off+h], with NaN for NULL: one statement per batch.
 const insertHistorySQL = `
 INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, yhat, lo95, hi95)
-SELECT $1::int, $2::text, $3::bigint, $4::float8[], $5::float8[], $6::float8[]
-FROM sidetrend.trackers t WHERE t.id = $1::int AND t.history_buckets > 0
+SELECT q.tid, q.key, q.issued,
+       array_replace(($6::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL),
+       array_replace(($7::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL),
+       array_replace(($8::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL)
+FROM unnest($1::int[], $2::text[], $3::bigint[], $4::int[], $5::int[]) AS q(tid, key, issued, off, h)
+JOIN sidetrend.trackers t ON t.id = q.tid
+WHERE t.history_buckets > 0
 ON CONFLICT (tracker_id, series_key, issued_for) DO NOTHING`
 
 // pruneHistorySQL keeps, per series, the forecasts issued in the newest
@@ -46,25 +53,30 @@ JOIN sidetrend.trackers t ON t.id = q.tid
 WHERE h.tracker_id = q.tid AND h.series_key = q.key AND h.issued_for <= q.newest - t.history_buckets`
 
 // RecordHistory appends served forecasts to sidetrend.forecast_issues (read
-// through the view sidetrend.forecast_history) in
-// the caller's transaction and deletes, for each series it was given, the
-// rows issued history_buckets or more buckets before its newest issue.
+// through the view sidetrend.forecast_history) in the caller's transaction
+// and deletes, for each series it was given, the rows issued
+// history_buckets or more buckets before its newest issue.
 func RecordHistory(ctx context.Context, tx pgx.Tx, fcs []IssuedForecast) error {
 	if len(fcs) == 0 {
 		return nil
 	}
-	// One small pipelined INSERT per series: measured several times
-	// cheaper than one statement that unnests and regroups every horizon.
-	b := &pgx.Batch{}
-	stids, skeys, sissued := make([]int32, len(fcs)), make([]string, len(fcs)), make([]int64, len(fcs))
+	n := len(fcs)
+	tids, keys, issued := make([]int32, n), make([]string, n), make([]int64, n)
+	offs, hs := make([]int32, n), make([]int32, n)
+	// Never nil: a nil slice is sent as NULL, not as an empty array.
+	h := len(fcs[0].Yhat)
+	yhat, lo, hi := make([]float64, 0, h*n), make([]float64, 0, h*n), make([]float64, 0, h*n)
 	for i, f := range fcs {
 		if len(f.Lo95) != len(f.Yhat) || len(f.Hi95) != len(f.Yhat) {
 			return fmt.Errorf("record history of %q: %d forecasts but %d and %d interval bounds", f.SeriesKey, len(f.Yhat), len(f.Lo95), len(f.Hi95))
 		}
-		stids[i], skeys[i], sissued[i] = int32(f.TrackerID), f.SeriesKey, f.IssuedFor
-		b.Queue(insertHistorySQL, int32(f.TrackerID), f.SeriesKey, f.IssuedFor, nullables(f.Yhat), nullables(f.Lo95), nullables(f.Hi95))
+		tids[i], keys[i], issued[i] = int32(f.TrackerID), f.SeriesKey, f.IssuedFor
+		offs[i], hs[i] = int32(len(yhat)), int32(len(f.Yhat))
+		yhat, lo, hi = appendFinite(yhat, f.Yhat), appendFinite(lo, f.Lo95), appendFinite(hi, f.Hi95)
 	}
-	b.Queue(pruneHistorySQL, stids, skeys, sissued)
+	b := &pgx.Batch{}
+	b.Queue(insertHistorySQL, tids, keys, issued, offs, hs, yhat, lo, hi)
+	b.Queue(pruneHistorySQL, tids, keys, issued)
 	if err := tx.SendBatch(ctx, b).Close(); err != nil {
 		return fmt.Errorf("record forecast history: %w", err)
 	}

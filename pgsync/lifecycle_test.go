@@ -86,8 +86,21 @@ func TestTruncateRebuildDrop(t *testing.T) {
 	ro := refTracker{name: "other", table: "other", agg: "sum", empty: "zero", bucket: "1 day", tz: "UTC", spec: obsSpec, horizon: 5}
 	exec(t, pool, `ALTER TABLE other ADD COLUMN k text`)
 	compareAll(t, pool, ro, referenceFit(t, pool, ro), "other tracker after the drop")
+	obsHistory := count(`SELECT count(*) FROM sidetrend.forecast_issues h JOIN sidetrend.trackers t ON t.id = h.tracker_id WHERE t.name = 'obs'`)
+	otherHistory := count(`SELECT count(*) FROM sidetrend.forecast_issues h JOIN sidetrend.trackers t ON t.id = h.tracker_id WHERE t.name = 'other'`)
+	if obsHistory == 0 || otherHistory == 0 {
+		t.Fatalf("forecast history before untrack: %d rows of obs, %d of other; want some of each", obsHistory, otherHistory)
+	}
 	exec(t, pool, `SELECT sidetrend.untrack('obs')`)
 	if n := count(`SELECT count(*) FROM sidetrend.trackers`); n != 1 {
 		t.Errorf("%d trackers after untrack, want 1", n)
+	}
+	// Untracking deletes the tracker's forecast history (migration 00005's
+	// trigger, which replaced a cascading foreign key) and no other's.
+	if n := count(`SELECT count(*) FROM sidetrend.forecast_issues h WHERE NOT EXISTS (SELECT 1 FROM sidetrend.trackers t WHERE t.id = h.tracker_id)`); n != 0 {
+		t.Errorf("after untrack: %d forecast history rows of no tracker, want 0", n)
+	}
+	if n := count(`SELECT count(*) FROM sidetrend.forecast_issues`); n != otherHistory {
+		t.Errorf("after untrack: %d forecast history rows, want the other tracker's %d", n, otherHistory)
 	}
 }

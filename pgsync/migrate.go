@@ -36,17 +36,9 @@ func Migrate(ctx context.Context, dbURL string, log *slog.Logger) (int, error) {
 	if err := createSchema(ctx, db); err != nil {
 		return 0, err
 	}
-	locker, err := lock.NewPostgresSessionLocker(lock.WithLockID(migrationLockID))
+	p, err := newMigrationProvider(db)
 	if err != nil {
 		return 0, err
-	}
-	p, err := goose.NewProvider(goose.DialectPostgres, db, migrations.FS,
-		goose.WithTableName("sidetrend.schema_migrations"),
-		goose.WithSessionLocker(locker),
-		goose.WithDisableGlobalRegistry(true),
-	)
-	if err != nil {
-		return 0, fmt.Errorf("load migrations: %w", err)
 	}
 	res, err := p.Up(ctx)
 	if err != nil {
@@ -74,4 +66,22 @@ func createSchema(ctx context.Context, db *sql.DB) error {
 		return fmt.Errorf("create schema sidetrend: %w", err)
 	}
 	return nil
+}
+
+// newMigrationProvider is the goose provider of sidetrend's migrations on
+// db, serialised by a session advisory lock.
+func newMigrationProvider(db *sql.DB) (*goose.Provider, error) {
+	locker, err := lock.NewPostgresSessionLocker(lock.WithLockID(migrationLockID))
+	if err != nil {
+		return nil, err
+	}
+	p, err := goose.NewProvider(goose.DialectPostgres, db, migrations.FS,
+		goose.WithTableName("sidetrend.schema_migrations"),
+		goose.WithSessionLocker(locker),
+		goose.WithDisableGlobalRegistry(true),
+	)
+	if err != nil {
+		return nil, fmt.Errorf("load migrations: %w", err)
+	}
+	return p, nil
 }

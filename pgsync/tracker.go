@@ -7,10 +7,12 @@ package pgsync
 import (
 	"context"
 	"fmt"
+	"time"
 
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgxpool"
 
+	"github.com/sidetrend/sidetrend/calendar"
 	"github.com/sidetrend/sidetrend/estimator"
 )
 
@@ -28,6 +30,29 @@ type Tracker struct {
 	Horizon    int
 	Backfilled bool
 	Status     string
+
+	// cal numbers the tracker's buckets in Go, the twin of the SQL bucket
+	// functions (package calendar); calErr says why it could not be built
+	// (a zone Go does not know, say), and then the drain asks Postgres.
+	cal    calendar.Calendar
+	calErr error
+}
+
+// bucketEnd returns when bucket i ends (the next bucket starts), or false
+// when Go has no calendar for the tracker.
+func (t *Tracker) bucketEnd(i int64) (time.Time, bool) {
+	if t.calErr != nil {
+		return time.Time{}, false
+	}
+	return t.cal.Start(i + 1), true
+}
+
+func (t *Tracker) buildCalendar() {
+	w, err := calendar.ParseWidth(t.Bucket)
+	if err == nil {
+		t.cal, err = calendar.New(w, t.TZ)
+	}
+	t.calErr = err
 }
 
 const trackersSQL = `
@@ -50,6 +75,7 @@ func LoadTrackers(ctx context.Context, q querier) (map[int]*Tracker, error) {
 			rows.Close()
 			return nil, fmt.Errorf("load trackers: %w", err)
 		}
+		t.buildCalendar()
 		out[t.ID] = t
 	}
 	if err := rows.Err(); err != nil {

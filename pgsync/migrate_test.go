@@ -1,0 +1,61 @@
+package pgsync
+
+import (
+	"context"
+	"testing"
+
+	"github.com/jackc/pgx/v5/stdlib"
+)
+
+// TestThroughputMigrationDownUp steps migration 00005 down and up again on a
+// database with a tracker and forecast history: Down puts the foreign key
+// of forecast_issues back, Up removes it and installs the trigger that
+// deletes an untracked tracker's history.
+func TestThroughputMigrationDownUp(t *testing.T) {
+	t.Parallel()
+	pool, url := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE sales (at timestamptz, v float8)`)
+	exec(t, pool, `SELECT sidetrend.track('sales', 'at', 'v', horizon => 3)`)
+	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', d FROM generate_series(0, 9) d`)
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	cfg, err := parseConfig(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	db := stdlib.OpenDB(*cfg.ConnConfig)
+	defer db.Close()
+	p, err := newMigrationProvider(db)
+	if err != nil {
+		t.Fatal(err)
+	}
+	state := func() (fk, trigger bool, history int) {
+		t.Helper()
+		err := pool.QueryRow(ctx, `
+			SELECT EXISTS (SELECT 1 FROM pg_constraint WHERE conrelid = 'sidetrend.forecast_issues'::regclass AND contype = 'f'),
+			       EXISTS (SELECT 1 FROM pg_trigger WHERE tgrelid = 'sidetrend.trackers'::regclass AND tgname = '_forget_history'),
+			       (SELECT count(*) FROM sidetrend.forecast_issues)`).Scan(&fk, &trigger, &history)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return
+	}
+	fk, trig, before := state()
+	if fk || !trig || before == 0 {
+		t.Fatalf("after Up: foreign key %v, trigger %v, %d history rows; want no key, the trigger and some rows", fk, trig, before)
+	}
+	if _, err := p.DownTo(ctx, 4); err != nil {
+		t.Fatalf("down to 4: %v", err)
+	}
+	if fk, trig, n := state(); !fk || trig || n != before {
+		t.Fatalf("after Down: foreign key %v, trigger %v, %d history rows; want the key, no trigger, %d rows", fk, trig, n, before)
+	}
+	if _, err := p.Up(ctx); err != nil {
+		t.Fatalf("up again: %v", err)
+	}
+	if fk, trig, n := state(); fk || !trig || n != before {
+		t.Fatalf("after Up again: foreign key %v, trigger %v, %d history rows; want no key, the trigger, %d rows", fk, trig, n, before)
+	}
+}
