@@ -579,8 +579,8 @@ func startBenchRunner(b *testing.B, dbURL string, onBatch func(BatchInfo)) {
 func BenchmarkPipeline(b *testing.B) {
 	admin := benchServer(b)
 	// backlogRows is the backlog an op drains: ten full batches
-	// (BatchSize change rows each), so that a drain is mostly full batches.
-	const backlogRows = 10 * BatchSize
+	// (DefaultBatchSize change rows each), so that a drain is mostly full batches.
+	const backlogRows = 10 * DefaultBatchSize
 	// past is day 0 of the past-days cases: any Monday long gone.
 	past := time.Date(2010, 1, 4, 0, 0, 0, 0, time.UTC)
 	// today is the start of the current UTC day, the open bucket of mode=live.

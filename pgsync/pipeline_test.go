@@ -8,6 +8,7 @@ import (
 	"math/rand/v2"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -198,9 +199,21 @@ func createSales(t *testing.T, pool *pgxpool.Pool, name string) {
 
 // TestPipelineMatchesOffline inserts rows in many statements of random size
 // in random order, with catch-ups at random moments, and checks that the
-// forecasts equal a from-scratch fit on SELECT of the table.
+// forecasts equal a from-scratch fit on SELECT of the table: with the
+// default batch size, and with batches of 7 changes drained by three
+// transactions at once (Syncer.Workers), so that a catch-up is many full
+// batches that run concurrently and often touch the same series.
 func TestPipelineMatchesOffline(t *testing.T) {
 	t.Parallel()
+	for _, c := range []struct{ batch, workers int }{{DefaultBatchSize, DefaultWorkers}, {7, 3}} {
+		t.Run(fmt.Sprintf("batch=%d/workers=%d", c.batch, c.workers), func(t *testing.T) {
+			t.Parallel()
+			testPipelineMatchesOffline(t, c.batch, c.workers)
+		})
+	}
+}
+
+func testPipelineMatchesOffline(t *testing.T, batch, workers int) {
 	pool, _ := newDB(t)
 	ctx := context.Background()
 	rng := rand.New(rand.NewPCG(1, 1))
@@ -216,6 +229,9 @@ func TestPipelineMatchesOffline(t *testing.T) {
 		rng.Shuffle(len(w), func(a, b int) { w[a], w[b] = w[b], w[a] })
 	}
 	s := NewSyncer(pool, nil)
+	s.BatchSize, s.Workers = batch, workers
+	var batches atomic.Int64
+	s.OnBatch = func(BatchInfo) { batches.Add(1) }
 	for len(rest) > 0 {
 		n := min(1+rng.IntN(40), len(rest))
 		insertRows(t, pool, "sales", rest[:n])
@@ -233,6 +249,12 @@ func TestPipelineMatchesOffline(t *testing.T) {
 	st := s.Stats()
 	if st.Backfills != 1 || st.Changes == 0 {
 		t.Errorf("stats %+v: want one backfill and some changes", st)
+	}
+	if st.Batches != batches.Load() {
+		t.Errorf("stats count %d batches, OnBatch was called %d times", st.Batches, batches.Load())
+	}
+	if minBatches := st.Changes / int64(batch); st.Batches < minBatches {
+		t.Errorf("%d batches for %d changes at batch size %d", st.Batches, st.Changes, batch)
 	}
 	var left int
 	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&left); err != nil || left != 0 {
@@ -339,7 +361,7 @@ func TestRestartLosesNothing(t *testing.T) {
 }
 
 // TestTwoSidecarsApplyOnce runs two syncers at the same time on one change
-// log while rows arrive: a change applied twice would double a bucket sum
+// log, each with two workers, while rows arrive: a change applied twice would double a bucket sum
 // and break the comparison with the offline fit.
 func TestTwoSidecarsApplyOnce(t *testing.T) {
 	t.Parallel()
@@ -360,6 +382,9 @@ func TestTwoSidecarsApplyOnce(t *testing.T) {
 		}
 		defer p2.Close()
 		s := NewSyncer(p2, nil)
+		// Small batches of different sizes (3 and 5 changes): many claims,
+		// and each sidecar drains with its own two workers in parallel.
+		s.BatchSize = 3 + 2*i
 		syncers = append(syncers, s)
 		wg.Add(1)
 		go func() {

@@ -54,6 +54,9 @@ type RunnerConfig struct {
 	// OnCaughtUp, if set, is called after every catch-up that found the log
 	// empty: tests wait on it instead of sleeping.
 	OnCaughtUp func(Stats)
+	// Workers and BatchSize are handed to the Syncer (0: its defaults).
+	Workers   int
+	BatchSize int
 	// OnBatch and Progress are handed to the Syncer (metrics, progress bars).
 	OnBatch  func(BatchInfo)
 	Progress Progress
@@ -148,6 +151,12 @@ func (r *Runner) Done() <-chan struct{} {
 func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 	syncer := NewSyncer(pool, r.log)
 	syncer.OnBatch, syncer.Progress = r.cfg.OnBatch, r.cfg.Progress
+	if r.cfg.Workers > 0 {
+		syncer.Workers = r.cfg.Workers
+	}
+	if r.cfg.BatchSize > 0 {
+		syncer.BatchSize = r.cfg.BatchSize
+	}
 	backoff := 100 * time.Millisecond
 	for ctx.Err() == nil {
 		err := r.session(ctx, pool, syncer, func() { backoff = 100 * time.Millisecond })

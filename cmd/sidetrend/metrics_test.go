@@ -257,3 +257,21 @@ func TestRunEmbedded(t *testing.T) {
 		t.Errorf("the private server still runs after run --once ended (postmaster.pid from %v)", fi.ModTime())
 	}
 }
+
+// TestRunBadDrainFlags: out-of-range --workers and --batch-size are refused
+// before anything starts (no database is named: the check comes first).
+func TestRunBadDrainFlags(t *testing.T) {
+	t.Parallel()
+	ctx := context.Background()
+	for _, c := range []struct{ flag, value, want string }{
+		{"--workers", "0", "--workers 0 is out of range"},
+		{"--workers", "65", "--workers 65 is out of range"},
+		{"--batch-size", "0", "--batch-size 0 is out of range"},
+		{"--batch-size", "100001", "--batch-size 100001 is out of range"},
+	} {
+		_, err := runCLI(t, ctx, "run", "--once", "--data-dir", t.TempDir(), c.flag, c.value)
+		if err == nil || !strings.Contains(err.Error(), c.want) {
+			t.Errorf("run %s %s: error %v, want one that says %q", c.flag, c.value, err, c.want)
+		}
+	}
+}

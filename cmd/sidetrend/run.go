@@ -22,6 +22,8 @@ func runCommand() *cli.Command {
 			dbFlag,
 			&cli.BoolFlag{Name: "once", Usage: "drain everything pending, fold every due bucket, and exit", EnvVars: []string{"SIDETREND_ONCE"}},
 			&cli.DurationFlag{Name: "poll", Value: 5 * time.Second, Usage: "fallback poll interval when no NOTIFY arrives", EnvVars: []string{"SIDETREND_POLL"}},
+			&cli.IntFlag{Name: "workers", Value: pgsync.DefaultWorkers, Usage: "transactions that drain a backlog of changes at once", EnvVars: []string{"SIDETREND_WORKERS"}},
+			&cli.IntFlag{Name: "batch-size", Value: pgsync.DefaultBatchSize, Usage: "change rows one drain transaction claims at most", EnvVars: []string{"SIDETREND_BATCH_SIZE"}},
 			&cli.BoolFlag{Name: "migrate", Value: true, Usage: "apply pending migrations on start", EnvVars: []string{"SIDETREND_MIGRATE"}},
 			&cli.StringFlag{Name: "http", Usage: "serve /metrics (Prometheus) and /healthz on this address, e.g. 127.0.0.1:9188; off when empty", EnvVars: []string{"SIDETREND_HTTP"}},
 			&cli.StringFlag{Name: "data-dir", Value: "./.sidetrend/pg", Usage: "data directory of the private Postgres used when no database is configured", EnvVars: []string{"SIDETREND_DATA_DIR"}},
@@ -33,6 +35,13 @@ func runCommand() *cli.Command {
 		},
 		Action: func(c *cli.Context) error {
 			log := newLogger(c)
+			workers, batch := c.Int("workers"), c.Int("batch-size")
+			if workers < 1 || workers > 64 {
+				return fmt.Errorf("--workers %d is out of range: use 1 to 64 (the default %d suits a small machine)", workers, pgsync.DefaultWorkers)
+			}
+			if batch < 1 || batch > 100000 {
+				return fmt.Errorf("--batch-size %d is out of range: use 1 to 100000 (default %d)", batch, pgsync.DefaultBatchSize)
+			}
 			db := c.String("db")
 			if !databaseConfigured(c) {
 				e, err := startEmbedded(c.Context, c.String("data-dir"), c.Int("pg-port"), embeddedDB, nil, log)
@@ -60,7 +69,7 @@ func runCommand() *cli.Command {
 				}
 				defer pool.Close()
 				s := pgsync.NewSyncer(pool, log)
-				s.Tune = true
+				s.Tune, s.Workers, s.BatchSize = true, workers, batch
 				s.Progress = progress
 				if err := s.CatchUp(c.Context); err != nil {
 					return err
@@ -73,7 +82,7 @@ func runCommand() *cli.Command {
 			if poll <= 0 {
 				return fmt.Errorf("--poll %s is not a positive duration: use e.g. 5s", poll)
 			}
-			cfg := pgsync.RunnerConfig{Poll: poll, Progress: progress}
+			cfg := pgsync.RunnerConfig{Poll: poll, Progress: progress, Workers: workers, BatchSize: batch}
 			if addr := c.String("http"); addr != "" {
 				pool, err := pgsync.Connect(c.Context, db)
 				if err != nil {
