@@ -805,3 +805,40 @@ func TestAlertRecipes(t *testing.T) {
 		}
 	}
 }
+
+// TestDrainPrunesHistory folds a series one bucket per catch-up with
+// history_buckets = 5 and checks that the drain itself keeps exactly the
+// forecasts issued in the newest 5 buckets: issued_for in (N - 5, N] for the
+// newest folded bucket N, one row each.
+func TestDrainPrunesHistory(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE readings (at timestamptz, v float8)`)
+	exec(t, pool, `SELECT sidetrend.track('readings', 'at', 'v', lambda => 0.9, horizon => 3)`)
+	exec(t, pool, `UPDATE sidetrend.trackers SET history_buckets = 5`)
+	s := NewSyncer(pool, nil)
+	for d := 0; d < 25; d++ {
+		exec(t, pool, `INSERT INTO readings VALUES ('2026-03-02 09:00Z'::timestamptz + $1 * interval '1 day', 10 + $1::int % 4)`, d)
+		if err := s.CatchUp(ctx); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var n, lo, hi, folded, first int64
+	err := pool.QueryRow(ctx, `
+		SELECT count(*), min(h.issued_for), max(h.issued_for),
+		       (SELECT folded_through FROM sidetrend.series), (SELECT first_bucket FROM sidetrend.series)
+		FROM sidetrend.forecast_issues h`).Scan(&n, &lo, &hi, &folded, &first)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// 25 days, all long past: days 0 to 24 folded, one batch each (the
+	// drain once rewrote first_bucket as 0 on every incremental batch).
+	if first != folded-24 {
+		t.Errorf("first_bucket %d after 25 incremental batches, want %d (day 0)", first, folded-24)
+	}
+	if n != 5 || hi != folded || lo != folded-4 {
+		t.Errorf("forecast history: %d rows issued at %d..%d with bucket %d folded; want 5 rows issued at %d..%d",
+			n, lo, hi, folded, folded-4, folded)
+	}
+}

@@ -83,7 +83,7 @@ ON CONFLICT (tracker_id, series_key) DO NOTHING`
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
 // that two sidecars never wait on each other in a cycle.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
+SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -683,6 +683,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	var gone seriesRows // only tid and key: series with no point left
 	var surprises []Surprise
 	var history []IssuedForecast
+	var prune []bool // of each history entry: whether older issues may be due for deletion
 	for _, id := range ids {
 		w := work[id]
 		if w == nil {
@@ -706,6 +707,11 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		surprises = append(surprises, w.watch.Events...)
 		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
 			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
+			// Forecasts are issued at folded buckets, none before the
+			// series' first; until history_buckets have passed since then
+			// there is nothing to prune. A replay may have moved the first
+			// bucket later, and a tracker keeping no history prunes all.
+			prune = append(prune, w.rebuild || w.tracker.History == 0 || w.folded-int64(w.tracker.History) >= w.first)
 		}
 	}
 	if out.len() > 0 {
@@ -721,7 +727,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	if err := RecordSurprises(ctx, tx, surprises); err != nil {
 		return err
 	}
-	return RecordHistory(ctx, tx, history)
+	return recordHistory(ctx, tx, history, prune)
 }
 
 // lockSeries locks the series rows of tids and keys that exist, decodes
@@ -740,7 +746,8 @@ func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys [
 		var lambda *float64
 		var lastDir *string
 		var pendingDue *time.Time
-		if err := rows.Scan(&tid, &key, &folded, &blob, &rebuild, &lambda, &lastDir, &pendingDue); err != nil {
+		var first *int64
+		if err := rows.Scan(&tid, &key, &folded, &first, &blob, &rebuild, &lambda, &lastDir, &pendingDue); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
@@ -752,6 +759,9 @@ func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys [
 		}
 		if folded != nil {
 			w.folded, w.hasFold = *folded, true
+		}
+		if first != nil {
+			w.first = *first
 		}
 		if w.hasFold && minTouched[id] <= w.folded {
 			w.rebuild = true

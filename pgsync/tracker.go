@@ -28,6 +28,7 @@ type Tracker struct {
 	Spec       estimator.Spec
 	LambdaAuto bool // created with lambda => NULL
 	Horizon    int
+	History    int // history_buckets: buckets of served forecasts kept
 	Backfilled bool
 	Status     string
 
@@ -57,7 +58,7 @@ func (t *Tracker) buildCalendar() {
 
 const trackersSQL = `
 SELECT id, name, source_name, bucket::text, tz, agg, empty, degree, coalesce(period, 0), harmonics,
-       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, backfilled, status
+       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status
 FROM sidetrend.trackers ORDER BY id`
 
 // LoadTrackers reads every tracker.
@@ -71,7 +72,7 @@ func LoadTrackers(ctx context.Context, q querier) (map[int]*Tracker, error) {
 		t := &Tracker{}
 		if err := rows.Scan(&t.ID, &t.Name, &t.Source, &t.Bucket, &t.TZ, &t.Agg, &t.Empty,
 			&t.Spec.Degree, &t.Spec.Period, &t.Spec.Harmonics, &t.Spec.Lambda, &t.LambdaAuto,
-			&t.Spec.BurnIn, &t.Horizon, &t.Backfilled, &t.Status); err != nil {
+			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("load trackers: %w", err)
 		}
