@@ -142,6 +142,11 @@ type Syncer struct {
 	BatchSize int
 	// Progress, if set, is told about long work: backfills and replays.
 	Progress Progress
+	// DrainAll makes CatchUp also wait for changes that other transactions
+	// held when it claimed (see drainLocked), so that it returns with every
+	// change that was in the log when it began drained: `run --once` and
+	// tests. The long-running Runner leaves them to whoever holds them.
+	DrainAll bool
 	// Tune makes CatchUp end with TunePending: trackers just backfilled (and
 	// those asked for with sidetrend.request_tune) get their lambda search,
 	// and trackers created with lambda => NULL get the result applied. The
@@ -212,8 +217,19 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	if err := s.resync(ctx); err != nil {
 		return err
 	}
+	var mark int64
+	if s.DrainAll {
+		if err := s.pool.QueryRow(ctx, `SELECT coalesce(max(id), 0) FROM sidetrend.changes`).Scan(&mark); err != nil {
+			return fmt.Errorf("read the change log: %w", err)
+		}
+	}
 	if err := s.drainLog(ctx); err != nil {
 		return err
+	}
+	if s.DrainAll {
+		if err := s.drainLocked(ctx, mark); err != nil {
+			return err
+		}
 	}
 	if s.Progress != nil {
 		var pending int64
@@ -269,6 +285,34 @@ func (s *Syncer) drainLog(ctx context.Context) error {
 		s.stats.add(h.stats)
 	}
 	return err
+}
+
+// drainLocked waits for the changes up to id mark that a claim skipped
+// because another transaction held them, and drains them once they are
+// free: a sidecar killed a moment ago can leave a transaction holding its
+// claim until the server notices the lost connection; a live one commits
+// its batch (and its claimed changes are gone).
+func (s *Syncer) drainLocked(ctx context.Context, mark int64) error {
+	wait := 20 * time.Millisecond
+	for {
+		var left bool
+		if err := s.pool.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM sidetrend.changes WHERE id <= $1)`, mark).Scan(&left); err != nil {
+			return fmt.Errorf("read the change log: %w", err)
+		}
+		if !left {
+			return nil
+		}
+		s.log.Debug("changes held by another transaction; waiting", "wait_ms", wait.Milliseconds())
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-time.After(wait):
+		}
+		wait = min(2*wait, time.Second)
+		if err := s.drainLog(ctx); err != nil {
+			return err
+		}
+	}
 }
 
 // drainSerial drains batches until one finds the change log empty.

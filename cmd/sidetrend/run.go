@@ -69,7 +69,7 @@ func runCommand() *cli.Command {
 				}
 				defer pool.Close()
 				s := pgsync.NewSyncer(pool, log)
-				s.Tune, s.Workers, s.BatchSize = true, workers, batch
+				s.Tune, s.DrainAll, s.Workers, s.BatchSize = true, true, workers, batch
 				s.Progress = progress
 				if err := s.CatchUp(c.Context); err != nil {
 					return err
