@@ -516,3 +516,63 @@ func TestTrackErrors(t *testing.T) {
 		t.Errorf("%d trackers (err %v), want 2", n, err)
 	}
 }
+
+// TestDrainAllWaitsForHeldChanges: a transaction (standing in for a sidecar
+// killed a moment ago, whose backend still holds its claim) locks one change
+// row. CatchUp with DrainAll must not return while the row is held, and
+// drains it once the lock goes; without DrainAll, CatchUp skips it.
+func TestDrainAllWaitsForHeldChanges(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE meter (at timestamptz, v float8)`)
+	exec(t, pool, `SELECT sidetrend.track('meter', 'at', 'v', horizon => 2)`)
+	s := NewSyncer(pool, nil)
+	if err := s.CatchUp(ctx); err != nil { // the backfill
+		t.Fatal(err)
+	}
+	exec(t, pool, `INSERT INTO meter SELECT '2026-01-01'::timestamptz + d * interval '1 day', d FROM generate_series(0, 9) d`)
+	holder, err := pool.Begin(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer holder.Rollback(ctx)
+	if _, err := holder.Exec(ctx, `SELECT id FROM sidetrend.changes ORDER BY id LIMIT 1 FOR UPDATE`); err != nil {
+		t.Fatal(err)
+	}
+	count := func() int {
+		var n int
+		if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.changes`).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		return n
+	}
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if n := count(); n != 1 {
+		t.Fatalf("without DrainAll: %d changes left, want the 1 held", n)
+	}
+	s.DrainAll = true
+	done := make(chan error, 1)
+	go func() { done <- s.CatchUp(ctx) }()
+	select {
+	case err := <-done:
+		t.Fatalf("CatchUp with DrainAll returned (%v) while a change was held", err)
+	case <-time.After(300 * time.Millisecond):
+	}
+	if err := holder.Rollback(ctx); err != nil {
+		t.Fatal(err)
+	}
+	select {
+	case err := <-done:
+		if err != nil {
+			t.Fatal(err)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("CatchUp with DrainAll did not return after the lock went")
+	}
+	if n := count(); n != 0 {
+		t.Errorf("after DrainAll: %d changes left, want 0", n)
+	}
+}
