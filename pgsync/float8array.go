@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/binary"
 	"math"
-	"slices"
 
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgtype"
@@ -48,7 +47,14 @@ func (float8ArrayEncoder) Encode(value any, buf []byte) ([]byte, error) {
 		buf = be.AppendUint32(buf, uint32(len(xs)))
 		buf = be.AppendUint32(buf, 1) // lower bound
 	}
-	buf = slices.Grow(buf, 12*len(xs))
+	// buf holds all of a statement's parameters, and pgx starts it small
+	// for every statement: grow it by doubling, so that the few-hundred-
+	// kilobyte arrays of a batch do not each copy everything before them.
+	if need := 12 * len(xs); cap(buf)-len(buf) < need {
+		grown := make([]byte, len(buf), 2*(len(buf)+need))
+		copy(grown, buf)
+		buf = grown
+	}
 	for _, x := range xs {
 		buf = be.AppendUint32(buf, 8)
 		buf = be.AppendUint64(buf, math.Float64bits(x))
