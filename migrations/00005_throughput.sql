@@ -44,6 +44,9 @@ CREATE TRIGGER _forget_history AFTER DELETE ON sidetrend.trackers
 COMMENT ON FUNCTION sidetrend._forget_history()
     IS 'Deletes the forecast history of deleted trackers (what a foreign key with ON DELETE CASCADE did before migration 5).';
 
+COMMENT ON TABLE sidetrend.points
+    IS 'Bucket aggregates per series: n and sum of the source rows in each bucket, min and max for min and max trackers, the last time and value for last trackers (NULL otherwise for trackers made after migration 5).';
+
 -- +goose StatementBegin
 CREATE OR REPLACE FUNCTION sidetrend.install_capture(tracker_id int) RETURNS void
 LANGUAGE plpgsql SET client_min_messages = warning AS $fn$
@@ -238,6 +241,7 @@ $fn$;
 
 -- +goose Down
 ALTER TABLE sidetrend.series RESET (toast_tuple_target);
+COMMENT ON TABLE sidetrend.points IS 'Bucket aggregates per series: n, sum, min, max and last of the source rows in each bucket.';
 DROP TRIGGER IF EXISTS _forget_history ON sidetrend.trackers;
 DROP FUNCTION IF EXISTS sidetrend._forget_history();
 DELETE FROM sidetrend.forecast_issues h

@@ -302,7 +302,11 @@ func (s *Syncer) drainLocked(ctx context.Context, mark int64) error {
 		if !left {
 			return nil
 		}
-		s.log.Debug("changes held by another transaction; waiting", "wait_ms", wait.Milliseconds())
+		if wait >= time.Second {
+			s.log.Info("waiting for changes another transaction holds (a sidecar that stopped a moment ago, or a session that locked them)", "up_to_id", mark)
+		} else {
+			s.log.Debug("changes held by another transaction; waiting", "wait_ms", wait.Milliseconds())
+		}
 		select {
 		case <-ctx.Done():
 			return ctx.Err()
