@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"runtime"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -574,5 +575,66 @@ func TestDrainAllWaitsForHeldChanges(t *testing.T) {
 	}
 	if n := count(); n != 0 {
 		t.Errorf("after DrainAll: %d changes left, want 0", n)
+	}
+}
+
+// TestForecastBoundsFromStoredSE: the forecasts view forms every interval
+// bound from the stored forecast, standard error and t quantile (migration
+// 00005) with the operations the estimator uses, yhat -+ t SE. Each bound
+// must equal the estimator's own Forecast of the stored state: to the last
+// bit on amd64, where Go fuses no multiply-add; within 1e-15 elsewhere.
+func TestForecastBoundsFromStoredSE(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	insertRows(t, pool, "sales", salesRows(rand.New(rand.NewPCG(5, 5)), 3, 40, 2))
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	tol := 0.0
+	if runtime.GOARCH != "amd64" {
+		tol = 1e-15
+	}
+	rows, err := pool.Query(ctx, `
+		SELECT s.series_key, s.state, f.horizon, f.lo80, f.hi80, f.lo95, f.hi95, f.cum_lo95, f.cum_hi95
+		FROM sidetrend.forecasts f
+		JOIN sidetrend.series s ON s.series_key = f.series_key
+		ORDER BY 1, 3`)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer rows.Close()
+	checked := 0
+	for rows.Next() {
+		var key string
+		var blob []byte
+		var h int
+		var got [6]float64
+		if err := rows.Scan(&key, &blob, &h, &got[0], &got[1], &got[2], &got[3], &got[4], &got[5]); err != nil {
+			t.Fatal(err)
+		}
+		st, err := estimator.DecodeFor(blob, salesSpec)
+		if err != nil {
+			t.Fatal(err)
+		}
+		fc, err := st.Forecast(14)
+		if err != nil {
+			t.Fatal(err)
+		}
+		i := h - 1
+		want := [6]float64{fc.Lo80[i], fc.Hi80[i], fc.Lo95[i], fc.Hi95[i], fc.CumLo95[i], fc.CumHi95[i]}
+		for k := range want {
+			if d := math.Abs(got[k] - want[k]); d > tol*math.Abs(want[k]) {
+				t.Errorf("%s h=%d bound %d: view %v, estimator %v", key, h, k, got[k], want[k])
+			}
+		}
+		checked++
+	}
+	if err := rows.Err(); err != nil {
+		t.Fatal(err)
+	}
+	if checked != 3*14 {
+		t.Errorf("checked %d forecast rows, want %d (3 shops, horizon 14)", checked, 3*14)
 	}
 }

@@ -9,7 +9,9 @@ import (
 
 // updateSeriesSQL writes the new rows of every series a batch advanced in
 // one statement: the per-series values come as parallel arrays, unnested,
-// and the forecast arrays of all series as one flat float8[] per column,
+// and the forecast arrays (yhat and its standard error, cumulative and its
+// standard error; the forecasts view forms the bounds) of all series as one
+// flat float8[] per column,
 // each series' part at [off+1 : off+h] (h = 0: no forecast, NULL). One
 // statement per series cost a parse, bind and execute each and, with its
 // boxed array elements, most of the sidecar's allocations; this form was
@@ -24,13 +26,10 @@ UPDATE sidetrend.series s SET
     ready = q.ready, rebuild = false, pending_due = q.pending_due, updated_at = now(),
     lambda = nullif(q.lambda, 'NaN'),
     yhat     = CASE WHEN q.h > 0 THEN array_replace(($24::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    lo80     = CASE WHEN q.h > 0 THEN array_replace(($25::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    hi80     = CASE WHEN q.h > 0 THEN array_replace(($26::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    lo95     = CASE WHEN q.h > 0 THEN array_replace(($27::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    hi95     = CASE WHEN q.h > 0 THEN array_replace(($28::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    cum_yhat = CASE WHEN q.h > 0 THEN array_replace(($29::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    cum_lo95 = CASE WHEN q.h > 0 THEN array_replace(($30::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
-    cum_hi95 = CASE WHEN q.h > 0 THEN array_replace(($31::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
+    se       = CASE WHEN q.h > 0 THEN array_replace(($25::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
+    cum_yhat = CASE WHEN q.h > 0 THEN array_replace(($26::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
+    cum_se   = CASE WHEN q.h > 0 THEN array_replace(($27::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) END,
+    t80 = nullif(q.t80, 'NaN'), t95 = nullif(q.t95, 'NaN'),
     level = nullif(q.level, 'NaN'), slope = nullif(q.slope, 'NaN'),
     slope_se = nullif(q.slope_se, 'NaN'), sigma = nullif(q.sigma, 'NaN'),
     n_errors = q.n_errors, mae = nullif(q.mae, 'NaN'), rmse = nullif(q.rmse, 'NaN'),
@@ -41,10 +40,10 @@ FROM unnest($1::int[], $2::text[], $3::bigint[], $4::bigint[], $5::bigint[], $6:
             $8::timestamptz[], $9::float8[], $10::int[], $11::int[],
             $12::float8[], $13::float8[], $14::float8[], $15::float8[], $16::bigint[],
             $17::float8[], $18::float8[], $19::float8[], $20::float8[], $21::float8[], $22::float8[],
-            $23::text[], $32::text[])
+            $23::text[], $28::text[], $29::float8[], $30::float8[])
      AS q(tid, key, folded, first, points, state, ready, pending_due, lambda, off, h,
           level, slope, slope_se, sigma, n_errors, mae, rmse, mape, bias, cov80, cov95,
-          last_error, last_direction)
+          last_error, last_direction, t80, t95)
 WHERE s.tracker_id = q.tid AND s.series_key = q.key`
 
 // deleteSeriesSQL drops the rows of series that have no point left.
@@ -77,9 +76,10 @@ type seriesRows struct {
 	cov95      []float64
 	lastErr    []*string
 	lastDir    []*string
-	// yhat, lo80, hi80, lo95, hi95, cum_yhat, cum_lo95, cum_hi95 of every
-	// series, one after another.
-	fc [8][]float64
+	t80, t95   []float64
+	// yhat, se, cum_yhat, cum_se of every series, one after another (the
+	// forecasts view forms the interval bounds).
+	fc [4][]float64
 }
 
 // newSeriesRows returns columns with room for n series of horizon h: the
@@ -95,6 +95,7 @@ func newSeriesRows(n, h int) *seriesRows {
 		nErrors: make([]*int64, 0, n), mae: make([]float64, 0, n), rmse: make([]float64, 0, n),
 		mape: make([]float64, 0, n), bias: make([]float64, 0, n), cov80: make([]float64, 0, n),
 		cov95: make([]float64, 0, n), lastErr: make([]*string, 0, n), lastDir: make([]*string, 0, n),
+		t80: make([]float64, 0, n), t95: make([]float64, 0, n),
 	}
 	for i := range r.fc {
 		r.fc[i] = make([]float64, 0, n*h)
@@ -110,7 +111,7 @@ func (r *seriesRows) args() []any {
 		r.pendingDue, r.lambda, r.off, r.h,
 		r.level, r.slope, r.slopeSE, r.sigma, r.nErrors,
 		r.mae, r.rmse, r.mape, r.bias, r.cov80, r.cov95,
-		r.lastErr, r.fc[0], r.fc[1], r.fc[2], r.fc[3], r.fc[4], r.fc[5], r.fc[6], r.fc[7], r.lastDir}
+		r.lastErr, r.fc[0], r.fc[1], r.fc[2], r.fc[3], r.lastDir, r.t80, r.t95}
 }
 
 // add appends the row of w with state st (nil: nothing folded yet) and
@@ -157,16 +158,17 @@ func (r *seriesRows) add(w *seriesWork, st *estimator.State, pendingDue *time.Ti
 	}
 
 	r.off = append(r.off, int32(len(r.fc[0])))
-	sigma := nan
+	sigma, t80, t95 := nan, nan, nan
 	if fc != nil {
 		r.h = append(r.h, int32(len(fc.Yhat)))
-		for i, col := range [8][]float64{fc.Yhat, fc.Lo80, fc.Hi80, fc.Lo95, fc.Hi95, fc.CumYhat, fc.CumLo95, fc.CumHi95} {
+		for i, col := range [4][]float64{fc.Yhat, fc.SE, fc.CumYhat, fc.CumSE} {
 			r.fc[i] = appendFinite(r.fc[i], col)
 		}
-		sigma = fc.Sigma
+		sigma, t80, t95 = fc.Sigma, fc.T80, fc.T95
 	} else {
 		r.h = append(r.h, 0)
 	}
+	r.t80, r.t95 = append(r.t80, finiteOrNaN(t80)), append(r.t95, finiteOrNaN(t95))
 	r.sigma = append(r.sigma, finiteOrNaN(sigma))
 	if slErr == nil {
 		r.level = append(r.level, finiteOrNaN(sl.Level))
