@@ -42,6 +42,20 @@ func TestThroughputMigrationDownUp(t *testing.T) {
 		}
 		return
 	}
+	bounds := func() string {
+		t.Helper()
+		var s string
+		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', horizon, yhat, lo80, hi80, lo95, hi95, cum_lo95, cum_hi95), '; ' ORDER BY horizon), '')
+			FROM sidetrend.forecasts`).Scan(&s)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return s
+	}
+	served := bounds()
+	if served == "" {
+		t.Fatal("no forecasts to compare")
+	}
 	fk, trig, before := state()
 	if fk || !trig || before == 0 {
 		t.Fatalf("after Up: foreign key %v, trigger %v, %d history rows; want no key, the trigger and some rows", fk, trig, before)
@@ -57,5 +71,13 @@ func TestThroughputMigrationDownUp(t *testing.T) {
 	}
 	if fk, trig, n := state(); fk || !trig || n != before {
 		t.Fatalf("after Up again: foreign key %v, trigger %v, %d history rows; want no key, the trigger, %d rows", fk, trig, n, before)
+	}
+	// Up marks ready series for a replay that fills the standard errors;
+	// after it the view serves the very same forecasts and bounds.
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if got := bounds(); got != served {
+		t.Errorf("forecasts after Down, Up and a replay:\n%s\nwant as served before:\n%s", got, served)
 	}
 }
