@@ -177,12 +177,22 @@ BEGIN
     EXECUTE format($f$
 CREATE OR REPLACE FUNCTION %1$s() RETURNS trigger
 LANGUAGE plpgsql SECURITY DEFINER SET search_path = pg_catalog, pg_temp AS $body$
+DECLARE
+    v_folded bigint;
 BEGIN
     IF TG_OP = 'INSERT' THEN
-        INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
-        SELECT %2$s, %5$s, to_jsonb(r) FROM new_rows r WHERE NOT coalesce(%4$s, false);
-        INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v)
-        SELECT %2$s, g.* FROM (%3$s FROM new_rows r WHERE coalesce(%4$s, false) GROUP BY 1, 2) g;
+        -- The rows taken in are counted as they are grouped; the rejects
+        -- scan (which evaluates the reason of each row) runs only when
+        -- fewer than all rows were taken in.
+        WITH ins AS (
+            INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v)
+            SELECT %2$s, g.* FROM (%3$s FROM new_rows r WHERE coalesce(%4$s, false) GROUP BY 1, 2) g
+            RETURNING n)
+        SELECT coalesce(sum(n), 0) INTO v_folded FROM ins;
+        IF v_folded < (SELECT count(*) FROM new_rows) THEN
+            INSERT INTO sidetrend.rejects (tracker_id, reason, row_data)
+            SELECT %2$s, %5$s, to_jsonb(r) FROM new_rows r WHERE NOT coalesce(%4$s, false);
+        END IF;
     ELSIF TG_OP = 'DELETE' THEN
         INSERT INTO sidetrend.changes (tracker_id, series_key, bucket, n, sum, min, max, last_t, last_v, retract)
         SELECT %2$s, g.k, g.b, -g.n, -g.s, g.mn, g.mx, NULL, NULL, true
