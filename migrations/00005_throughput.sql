@@ -1,30 +1,32 @@
--- Throughput of the drain.
+-- Throughput of the drain and of the capture triggers.
 --
 -- sidetrend.forecast_issues loses its foreign key to trackers: the key check
 -- on every inserted row (one per series and batch) cost about as much as the
 -- insert itself. A trigger on trackers keeps what ON DELETE CASCADE did:
 -- untracking deletes the tracker's forecast history. (sidetrend.points went
 -- without a foreign key from the start, for the same reason.)
-
 --
--- sidetrend.series keeps rows up to 8160 bytes inline: with its eight
--- forecast arrays a row passes the default TOAST threshold (about 2 kB)
--- from a horizon of about 20 buckets on, and every update then tried to
--- compress the arrays (floats hardly compress) and moved them out of line.
--- Measured with the pipeline benchmark at horizon 40: 1.2x to 1.3x the rows
--- per second with this setting.
+-- sidetrend.series keeps rows up to 8160 bytes inline. With eight forecast
+-- arrays a row passed the default TOAST threshold (about 2 kB) from a
+-- horizon of about 20 buckets on, and every update then tried to compress
+-- the arrays (floats hardly compress) and moved them out of line: measured
+-- with the pipeline benchmark at horizon 40, this setting gave 1.2x to 1.3x
+-- the rows per second. (With four arrays, below, the threshold moves to a
+-- horizon of about 40.)
 --
 -- sidetrend.series stores each forecast's standard errors and the two t
 -- quantiles instead of its six interval bound arrays: the forecasts view
 -- computes yhat -+ t SE with the same float8 operations in the same order
--- as the estimator (on amd64, where Go fuses no multiply-add, the same to the
--- last bit), and each update writes four arrays instead of eight. Ready series are replayed once (rebuild) to fill
--- the new columns; until then their intervals read NULL.
+-- as the estimator (on amd64, where Go fuses no multiply-add, the same to
+-- the last bit), and each update writes four arrays instead of eight. Ready
+-- series are replayed once (rebuild) to fill the new columns; until then
+-- their intervals read NULL.
 --
 -- sidetrend.install_capture writes faster capture triggers for trackers
 -- tracked from now on: min and max are aggregated only for the min and max
--- aggregates (the others read neither), and an insert or delete groups its
--- rows by hashing.
+-- aggregates (the others read neither), an insert or delete groups its
+-- rows by hashing, an insert looks for rejects only when it took in fewer
+-- rows than it wrote, and a single key column is the key as it is.
 -- Existing trackers keep their triggers, which write the same changes
 -- (apart from min and max that nothing reads); SELECT
 -- sidetrend.install_capture(id) as the tables' owner reinstalls them. Down
@@ -83,6 +85,20 @@ CREATE TRIGGER _forget_history AFTER DELETE ON sidetrend.trackers
 
 COMMENT ON FUNCTION sidetrend._forget_history()
     IS 'Deletes the forecast history of deleted trackers (what a foreign key with ON DELETE CASCADE did before migration 5).';
+
+-- A single key column is its own series key: concat_ws of one argument
+-- returns it unchanged, and the call cost a little on every captured row.
+-- +goose StatementBegin
+CREATE OR REPLACE FUNCTION sidetrend.series_key_expr(key_cols text[], rel text) RETURNS text
+LANGUAGE sql IMMUTABLE AS $$
+    SELECT CASE WHEN coalesce(cardinality(key_cols), 0) = 0 THEN $q$''$q$
+        WHEN cardinality(key_cols) = 1 THEN format('coalesce(%s.%I::text, %L)', rel, key_cols[1], '')
+        ELSE 'concat_ws(''|'', ' || (
+            SELECT string_agg(format('coalesce(%s.%I::text, %L)', rel, c, ''), ', ' ORDER BY o)
+            FROM unnest(key_cols) WITH ORDINALITY AS u(c, o)) || ')'
+    END
+$$;
+-- +goose StatementEnd
 
 COMMENT ON TABLE sidetrend.points
     IS 'Bucket aggregates per series: n and sum of the source rows in each bucket, min and max for min and max trackers, the last time and value for last trackers (NULL otherwise for trackers made after migration 5).';
@@ -290,6 +306,8 @@ $fn$;
 -- +goose StatementEnd
 
 -- +goose Down
+-- (series_key_expr and install_capture keep their new bodies: they make the
+-- same keys and the same changes.)
 ALTER TABLE sidetrend.series RESET (toast_tuple_target);
 ALTER TABLE sidetrend.series
     ADD COLUMN lo80 float8[], ADD COLUMN hi80 float8[], ADD COLUMN lo95 float8[], ADD COLUMN hi95 float8[],
