@@ -28,10 +28,9 @@ import (
 const DefaultBatchSize = 5000
 
 // claimSQL returns the statement that claims up to n change rows that no
-// other sidecar holds, that no other sidecar holds,
-// deletes them, folds them into sidetrend.points and returns each touched
-// series with the oldest bucket it touched, plus one row (NULL tracker)
-// carrying the number of changes claimed. All in the caller's transaction:
+// other sidecar holds, deletes them, folds them into sidetrend.points and
+// returns each touched series with the oldest bucket it touched, plus one
+// row (NULL tracker) carrying the number of changes claimed. All in the caller's transaction:
 // a crash before commit leaves every claimed change in the log. n is written
 // into the statement as a literal: with LIMIT $1 a generic plan may scan
 // the whole change log.
