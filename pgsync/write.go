@@ -11,11 +11,10 @@ import (
 // one statement: the per-series values come as parallel arrays, unnested,
 // and the forecast arrays (yhat and its standard error, cumulative and its
 // standard error; the forecasts view forms the bounds) of all series as one
-// flat float8[] per column,
-// each series' part at [off+1 : off+h] (h = 0: no forecast, NULL). One
-// statement per series cost a parse, bind and execute each and, with its
-// boxed array elements, most of the sidecar's allocations; this form was
-// measured several times faster (README, Performance).
+// flat float8[] per column, each series' part at [off+1 : off+h] (h = 0: no
+// forecast, NULL). One statement per series cost a parse, bind and execute
+// each and, with its boxed array elements, most of the sidecar's
+// allocations; this form was measured several times faster.
 //
 // Floats come as NaN for NULL (Postgres compares NaN equal to NaN, so
 // nullif and array_replace turn them back into NULLs); the writer sends
