@@ -153,15 +153,7 @@ func newBenchDB(b *testing.B, admin string) (*pgxpool.Pool, string) {
 	}
 	u.Path, u.RawPath = "/"+name, ""
 	dbURL := u.String()
-	if _, err := Migrate(ctx, dbURL, nil); err != nil {
-		b.Fatal(err)
-	}
-	pool, err := Connect(ctx, dbURL)
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(pool.Close)
-	return pool, dbURL
+	return migratedPool(b, ctx, dbURL), dbURL
 }
 
 func benchExec(b *testing.B, pool *pgxpool.Pool, sql string, args ...any) {

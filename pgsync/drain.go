@@ -39,7 +39,7 @@ func claimSQL(n int) string {
 WITH claimed AS (
     DELETE FROM sidetrend.changes c
     -- ctid = ANY(ARRAY(...)) plans as a TID scan (with enable_seqscan off,
-    -- see drainBatch); the IN form was cached as a nested-loop semi join
+    -- see Syncer.claim); the IN form was cached as a nested-loop semi join
     -- that re-ran the LIMIT subquery per row.
     WHERE c.ctid = ANY (ARRAY(SELECT ctid FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(n) + ` FOR UPDATE SKIP LOCKED))
     RETURNING c.tracker_id, c.series_key, c.bucket, c.n, c.sum, c.min, c.max, c.last_t, c.last_v, c.retract
@@ -423,44 +423,12 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("begin drain: %w", err)
 	}
 	defer tx.Rollback(context.WithoutCancel(ctx))
-	// The change log is a queue: its statistics, from whenever it was last
-	// analysed, say nothing about its size now. Planned as if empty, the
-	// claim scanned the whole log and compared every ctid with every
-	// claimed one (175 ms of a 230 ms batch, measured); with sequential
-	// scans off it takes the id index and a TID scan whatever the
-	// statistics say. The plan is cached under that setting.
-	if _, err := tx.Exec(ctx, `SET LOCAL enable_seqscan = off`); err != nil {
-		return 0, fmt.Errorf("claim changes: %w", err)
-	}
-	rows, err := tx.Query(ctx, claimSQL(max(1, s.BatchSize)))
+	touched, claimed, err := s.claim(ctx, tx)
 	if err != nil {
-		return 0, fmt.Errorf("claim changes: %w", err)
-	}
-	touched := map[seriesID]int64{}
-	var claimed int64
-	for rows.Next() {
-		var tid *int32
-		var key *string
-		var minBucket *int64
-		var n int64
-		if err := rows.Scan(&tid, &key, &minBucket, &n); err != nil {
-			rows.Close()
-			return 0, fmt.Errorf("claim changes: %w", err)
-		}
-		if tid == nil {
-			claimed = n
-			continue
-		}
-		touched[seriesID{int(*tid), *key}] = *minBucket
-	}
-	if err := rows.Err(); err != nil {
-		return 0, fmt.Errorf("claim changes: %w", err)
+		return 0, err
 	}
 	if claimed == 0 {
 		return 0, nil
-	}
-	if _, err := tx.Exec(ctx, `SET LOCAL enable_seqscan = on`); err != nil {
-		return 0, fmt.Errorf("claim changes: %w", err)
 	}
 	if err := s.recomputeDirty(ctx, tx, touched); err != nil {
 		return 0, err
@@ -475,6 +443,59 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 	s.stats.Batches++
 	s.batchDone("drain", before, began)
 	return int(claimed), nil
+}
+
+// claim runs claimSQL and returns each touched series with the oldest
+// bucket a change touched, and the number of changes claimed.
+//
+// The change log is a queue: its statistics, from whenever it was last
+// analysed, say nothing about its size now. Planned as if empty, the claim
+// scanned the whole log and compared every ctid with every claimed one
+// (175 ms of a 230 ms batch, measured); with sequential scans off it takes
+// the id index and a TID scan whatever the statistics say (the plan is
+// cached under that setting). The setting is on again for the rest of the
+// batch; all three statements go in one round trip.
+func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (map[seriesID]int64, int64, error) {
+	b := &pgx.Batch{}
+	b.Queue(`SET LOCAL enable_seqscan = off`)
+	b.Queue(claimSQL(max(1, s.BatchSize)))
+	b.Queue(`SET LOCAL enable_seqscan = on`)
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	if _, err := br.Exec(); err != nil {
+		return nil, 0, fmt.Errorf("claim changes: %w", err)
+	}
+	rows, err := br.Query()
+	if err != nil {
+		return nil, 0, fmt.Errorf("claim changes: %w", err)
+	}
+	touched := map[seriesID]int64{}
+	var claimed int64
+	for rows.Next() {
+		var tid *int32
+		var key *string
+		var minBucket *int64
+		var n int64
+		if err := rows.Scan(&tid, &key, &minBucket, &n); err != nil {
+			rows.Close()
+			return nil, 0, fmt.Errorf("claim changes: %w", err)
+		}
+		if tid == nil {
+			claimed = n
+			continue
+		}
+		touched[seriesID{int(*tid), *key}] = *minBucket
+	}
+	if err := rows.Err(); err != nil {
+		return nil, 0, fmt.Errorf("claim changes: %w", err)
+	}
+	if _, err := br.Exec(); err != nil {
+		return nil, 0, fmt.Errorf("claim changes: %w", err)
+	}
+	if err := br.Close(); err != nil {
+		return nil, 0, fmt.Errorf("claim changes: %w", err)
+	}
+	return touched, claimed, nil
 }
 
 // recomputeDirty rereads from the source every bucket of a min, max or last
@@ -727,7 +748,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		maxH = max(maxH, t.Horizon)
 	}
 	out := newSeriesRows(len(ids), maxH)
-	var gone seriesRows // only tid and key: series with no point left
+	var goneTids []int32 // series with no point left
+	var goneKeys []string
 	var surprises []Surprise
 	var history []IssuedForecast
 	var prune []bool // of each history entry: whether older issues may be due for deletion
@@ -744,7 +766,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			return err
 		}
 		if !keep {
-			gone.tid, gone.key = append(gone.tid, int32(id.tracker)), append(gone.key, id.key)
+			goneTids, goneKeys = append(goneTids, int32(id.tracker)), append(goneKeys, id.key)
 			continue
 		}
 		if w.unchanged {
@@ -766,8 +788,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			return fmt.Errorf("write series: %w", err)
 		}
 	}
-	if gone.len() > 0 {
-		if _, err := tx.Exec(ctx, deleteSeriesSQL, gone.tid, gone.key); err != nil {
+	if len(goneTids) > 0 {
+		if _, err := tx.Exec(ctx, deleteSeriesSQL, goneTids, goneKeys); err != nil {
 			return fmt.Errorf("delete empty series: %w", err)
 		}
 	}

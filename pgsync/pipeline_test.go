@@ -28,16 +28,22 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 func newDB(t *testing.T) (*pgxpool.Pool, string) {
 	t.Helper()
 	url := pgtest.NewDatabase(t)
-	ctx := context.Background()
+	return migratedPool(t, context.Background(), url), url
+}
+
+// migratedPool migrates the database at url and returns a pool on it,
+// closed when tb ends.
+func migratedPool(tb testing.TB, ctx context.Context, url string) *pgxpool.Pool {
+	tb.Helper()
 	if _, err := Migrate(ctx, url, nil); err != nil {
-		t.Fatal(err)
+		tb.Fatal(err)
 	}
 	pool, err := Connect(ctx, url)
 	if err != nil {
-		t.Fatal(err)
+		tb.Fatal(err)
 	}
-	t.Cleanup(pool.Close)
-	return pool, url
+	tb.Cleanup(pool.Close)
+	return pool
 }
 
 func exec(t *testing.T, pool *pgxpool.Pool, sql string, args ...any) {
@@ -636,5 +642,72 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 	}
 	if checked != 3*14 {
 		t.Errorf("checked %d forecast rows, want %d (3 shops, horizon 14)", checked, 3*14)
+	}
+}
+
+// TestBucketEndsSQLFallback: the drain takes when a bucket ends from the Go
+// calendar and asks sidetrend.bucket_start (pointsSQL with sql_ends) only
+// for a tracker whose zone Go cannot load. Both must give the same instant
+// for every point, in zones with and without daylight saving time and for
+// day, week, month and hour buckets.
+func TestBucketEndsSQLFallback(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE readings (at timestamptz, k text, v float8)`)
+	exec(t, pool, `INSERT INTO readings SELECT '2025-10-20 00:30Z'::timestamptz + h * interval '7 hours', 'a', h FROM generate_series(0, 400) h`)
+	for _, c := range []struct{ name, bucket, tz string }{
+		{"daily_utc", "1 day", "UTC"},
+		{"weekly_berlin", "7 days", "Europe/Berlin"},
+		{"monthly_sao_paulo", "1 month", "America/Sao_Paulo"},
+		{"hourly_kolkata", "1 hour", "Asia/Kolkata"},
+	} {
+		exec(t, pool, `SELECT sidetrend.track('readings', 'at', 'v', '{k}', bucket => $1::interval, tz => $2, name => $3, horizon => 2)`, c.bucket, c.tz, c.name)
+	}
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	trackers, err := LoadTrackers(ctx, pool)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var tids []int32
+	for id, tr := range trackers {
+		if tr.calErr != nil {
+			t.Fatalf("tracker %s: no Go calendar: %v", tr.Name, tr.calErr)
+		}
+		tids = append(tids, int32(id))
+	}
+	keys := make([]string, len(tids))
+	after := make([]int64, len(tids))
+	sqlEnds := make([]bool, len(tids))
+	for i := range tids {
+		keys[i], after[i], sqlEnds[i] = "a", math.MinInt64, true
+	}
+	rows, err := pool.Query(ctx, pointsSQL, tids, keys, after, sqlEnds)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer rows.Close()
+	checked := map[string]int{}
+	for rows.Next() {
+		var tid int32
+		var key string
+		var p point
+		if err := rows.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
+			t.Fatal(err)
+		}
+		tr := trackers[int(tid)]
+		want, _ := tr.bucketEnd(p.bucket)
+		if p.ends == nil || !p.ends.Equal(want) {
+			t.Errorf("%s bucket %d: sidetrend.bucket_start says it ends %v, the Go calendar %v", tr.Name, p.bucket, p.ends, want)
+		}
+		checked[tr.Name]++
+	}
+	if err := rows.Err(); err != nil {
+		t.Fatal(err)
+	}
+	if len(checked) != 4 || checked["hourly_kolkata"] < 400 || checked["monthly_sao_paulo"] < 4 {
+		t.Errorf("points checked per tracker: %v; want all four trackers, every point", checked)
 	}
 }
