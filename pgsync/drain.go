@@ -28,12 +28,26 @@ import (
 const DefaultBatchSize = 5000
 
 // claimSQL returns the statement that claims up to n change rows that no
-// other sidecar holds, deletes them, folds them into sidetrend.points and
-// returns each touched series with the oldest bucket it touched, plus one
-// row (NULL tracker) carrying the number of changes claimed. All in the caller's transaction:
-// a crash before commit leaves every claimed change in the log. n is written
-// into the statement as a literal: with LIMIT $1 a generic plan may scan
-// the whole change log.
+// other sidecar holds, deletes them, folds them into sidetrend.points, and
+// locks the series rows they touch, all in the caller's transaction: a crash
+// before commit leaves every claimed change in the log. It returns three
+// kinds of rows (column kind):
+//
+//   - claimPoint: a point the claim touched, with its aggregate as it now
+//     stands (the upsert's RETURNING: the newest version, whoever wrote it
+//     before);
+//   - claimSeries: a touched series' row, locked (FOR UPDATE returns the
+//     newest committed version);
+//   - claimCount: one row whose n is the number of changes claimed.
+//
+// Locks are taken in the same order as before this statement was one:
+// points first (the upsert, in key order), then series rows in key order,
+// so two sidecars never wait on each other in a cycle. Returning the
+// touched points spares a separate load for every series whose unfolded
+// points are all among them (advance), and locking here spares a statement
+// that joined the whole series table (together a fifth of a batch's time
+// in Postgres, measured). n is written into the statement as a literal:
+// with LIMIT $1 a generic plan may scan the whole change log.
 func claimSQL(n int) string {
 	return `
 WITH claimed AS (
@@ -67,12 +81,34 @@ WITH claimed AS (
                       THEN coalesce(EXCLUDED.last_v, p.last_v) ELSE p.last_v END,
         last_t = greatest(p.last_t, EXCLUDED.last_t),
         dirty = p.dirty OR EXCLUDED.dirty
-    RETURNING p.tracker_id, p.series_key, p.bucket
+    RETURNING p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v, p.dirty
+), locked AS (
+    SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild,
+           s.lambda, s.last_direction, s.pending_due
+    FROM sidetrend.series s
+    WHERE (s.tracker_id, s.series_key) IN (SELECT tracker_id, series_key FROM up)
+    ORDER BY s.tracker_id, s.series_key
+    FOR UPDATE OF s
 )
-SELECT u.tracker_id, u.series_key, min(u.bucket), 0::bigint FROM up u GROUP BY 1, 2
+SELECT ` + strconv.Itoa(claimPoint) + ` AS kind, tracker_id, series_key, bucket, n, sum, min, max, last_v, dirty,
+       NULL::bigint, NULL::bigint, NULL::bytea, NULL::bool, NULL::float8, NULL::text, NULL::timestamptz
+FROM up
 UNION ALL
-SELECT NULL, NULL, NULL, count(*) FROM claimed`
+SELECT ` + strconv.Itoa(claimSeries) + `, tracker_id, series_key, NULL, NULL, NULL, NULL, NULL, NULL, NULL,
+       folded_through, first_bucket, state, rebuild, lambda, last_direction, pending_due
+FROM locked
+UNION ALL
+SELECT ` + strconv.Itoa(claimCount) + `, NULL, NULL, NULL, count(*), NULL, NULL, NULL, NULL, NULL,
+       NULL, NULL, NULL, NULL, NULL, NULL, NULL
+FROM claimed`
 }
+
+// The kinds of claimSQL's rows.
+const (
+	claimPoint  = 1
+	claimSeries = 2
+	claimCount  = 3
+)
 
 const ensureSeriesSQL = `
 INSERT INTO sidetrend.series (tracker_id, series_key)
@@ -113,6 +149,11 @@ const dueSQL = `
 SELECT s.tracker_id, s.series_key FROM sidetrend.series s
 WHERE s.rebuild OR s.pending_due <= $1
 ORDER BY 1, 2 LIMIT 1000`
+
+// helpersFrom is the smallest first batch for which drainLog starts more
+// workers: a handful of changes (a quiet source, or the latency benchmark's
+// 10 rows a commit) take less time than a second worker's empty claim.
+const helpersFrom = 100
 
 // DefaultWorkers is how many transactions drain a backlog at once: two
 // measured best on this project's 2-core benchmark machine (README).
@@ -178,6 +219,9 @@ type Stats struct {
 	Rebuilds  int64 // series replayed from their points
 	Backfills int64 // trackers backfilled from their source table
 	Retries   int64 // batches retried after a deadlock or serialization failure
+	// FromClaim counts series advanced from the points their claim returned,
+	// without reading sidetrend.points (see claimedSuffice).
+	FromClaim int64
 }
 
 func (st *Stats) add(o Stats) {
@@ -187,6 +231,7 @@ func (st *Stats) add(o Stats) {
 	st.Rebuilds += o.Rebuilds
 	st.Backfills += o.Backfills
 	st.Retries += o.Retries
+	st.FromClaim += o.FromClaim
 }
 
 // NewSyncer returns a Syncer on pool.
@@ -256,19 +301,23 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	return nil
 }
 
-// drainLog drains the change log until it is empty. While batches come
-// back full there is a backlog, and Workers - 1 more workers drain beside
-// this Syncer, each a Syncer of its own with its own connection and
+// drainLog drains the change log until it is empty. When the first batch
+// finds more than a handful of changes, Workers - 1 more workers drain
+// beside this Syncer, each a Syncer of its own with its own connection and
 // transactions, so that one worker's Go work (states and forecasts)
-// overlaps another's time in Postgres. Their claims never overlap (SKIP
-// LOCKED); a series that two batches touch is locked by the first and
-// waited for by the second, which then reads the state the first committed.
+// overlaps another's time in Postgres: on a backlog each takes full
+// batches, and on a steady stream each takes what arrived while the other
+// was busy (started only for full batches, a stream was drained by one
+// worker at a time: 1.4x slower with 10,000 series, measured). Their claims
+// never overlap (SKIP LOCKED); a series that two batches touch is locked by
+// the first and waited for by the second, which then reads the state the
+// first committed.
 func (s *Syncer) drainLog(ctx context.Context) error {
 	n, err := s.retry(ctx, s.drainBatch)
 	if err != nil || n == 0 {
 		return err
 	}
-	if n < s.BatchSize || s.Workers <= 1 {
+	if n < helpersFrom || s.Workers <= 1 {
 		return s.drainSerial(ctx)
 	}
 	g, gctx := errgroup.WithContext(ctx)
@@ -423,79 +472,117 @@ func (s *Syncer) drainBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("begin drain: %w", err)
 	}
 	defer tx.Rollback(context.WithoutCancel(ctx))
-	touched, claimed, err := s.claim(ctx, tx)
+	c, err := s.claim(ctx, tx)
 	if err != nil {
 		return 0, err
 	}
-	if claimed == 0 {
+	if c.changes == 0 {
 		return 0, nil
 	}
-	if err := s.recomputeDirty(ctx, tx, touched); err != nil {
+	if err := s.recomputeDirty(ctx, tx, c.minTouched); err != nil {
 		return 0, err
 	}
-	if err := s.advance(ctx, tx, touched); err != nil {
+	if err := s.advance(ctx, tx, c.minTouched, c); err != nil {
 		return 0, err
 	}
 	if err := tx.Commit(ctx); err != nil {
 		return 0, fmt.Errorf("commit drain: %w", err)
 	}
-	s.stats.Changes += claimed
+	s.stats.Changes += c.changes
 	s.stats.Batches++
 	s.batchDone("drain", before, began)
-	return int(claimed), nil
+	return int(c.changes), nil
 }
 
-// claim runs claimSQL and returns each touched series with the oldest
-// bucket a change touched, and the number of changes claimed.
+// claimResult is what one claim found.
+type claimResult struct {
+	// minTouched is the oldest bucket a change touched, per series.
+	minTouched map[seriesID]int64
+	// points are the touched points as they now stand, per series.
+	points map[seriesID][]point
+	// dirty marks series with a touched point whose min, max or last must be
+	// reread from the source (recomputeDirty) before it can be folded.
+	dirty map[seriesID]bool
+	// series are the touched series' rows, locked.
+	series map[seriesID]storedSeries
+	// changes is the number of change rows claimed.
+	changes int64
+}
+
+// claim runs claimSQL.
 //
 // The change log is a queue: its statistics, from whenever it was last
 // analysed, say nothing about its size now. Planned as if empty, the claim
 // scanned the whole log and compared every ctid with every claimed one
 // (175 ms of a 230 ms batch, measured); with sequential scans off it takes
 // the id index and a TID scan whatever the statistics say (the plan is
-// cached under that setting). The setting is on again for the rest of the
-// batch; all three statements go in one round trip.
-func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (map[seriesID]int64, int64, error) {
+// cached under that setting), and it reaches the touched series rows by
+// their key index instead of hashing the whole series table. The setting is
+// on again for the rest of the batch; all three statements go in one round
+// trip.
+func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (*claimResult, error) {
 	b := &pgx.Batch{}
 	b.Queue(`SET LOCAL enable_seqscan = off`)
 	b.Queue(claimSQL(max(1, s.BatchSize)))
 	b.Queue(`SET LOCAL enable_seqscan = on`)
 	br := tx.SendBatch(ctx, b)
 	defer br.Close()
+	fail := func(err error) (*claimResult, error) { return nil, fmt.Errorf("claim changes: %w", err) }
 	if _, err := br.Exec(); err != nil {
-		return nil, 0, fmt.Errorf("claim changes: %w", err)
+		return fail(err)
 	}
 	rows, err := br.Query()
 	if err != nil {
-		return nil, 0, fmt.Errorf("claim changes: %w", err)
+		return fail(err)
 	}
-	touched := map[seriesID]int64{}
-	var claimed int64
+	c := &claimResult{minTouched: map[seriesID]int64{}, points: map[seriesID][]point{},
+		dirty: map[seriesID]bool{}, series: map[seriesID]storedSeries{}}
 	for rows.Next() {
+		var kind int32
 		var tid *int32
 		var key *string
-		var minBucket *int64
-		var n int64
-		if err := rows.Scan(&tid, &key, &minBucket, &n); err != nil {
+		var bucket, n *int64
+		var p point
+		var dirty *bool
+		var r storedSeries
+		var sum *float64
+		var rebuild *bool
+		if err := rows.Scan(&kind, &tid, &key, &bucket, &n, &sum, &p.min, &p.max, &p.last, &dirty,
+			&r.folded, &r.first, &r.blob, &rebuild, &r.lambda, &r.lastDir, &r.pendingDue); err != nil {
 			rows.Close()
-			return nil, 0, fmt.Errorf("claim changes: %w", err)
+			return fail(err)
 		}
-		if tid == nil {
-			claimed = n
-			continue
+		switch {
+		case kind == claimCount && n != nil:
+			c.changes = *n
+		case kind == claimPoint && tid != nil && key != nil && bucket != nil && n != nil && sum != nil && dirty != nil:
+			id := seriesID{int(*tid), *key}
+			p.bucket, p.n, p.sum = *bucket, *n, *sum
+			c.points[id] = append(c.points[id], p)
+			if m, ok := c.minTouched[id]; !ok || p.bucket < m {
+				c.minTouched[id] = p.bucket
+			}
+			if *dirty {
+				c.dirty[id] = true
+			}
+		case kind == claimSeries && tid != nil && key != nil && rebuild != nil:
+			r.rebuild = *rebuild
+			c.series[seriesID{int(*tid), *key}] = r
+		default:
+			rows.Close()
+			return fail(fmt.Errorf("unexpected row of kind %d", kind))
 		}
-		touched[seriesID{int(*tid), *key}] = *minBucket
 	}
 	if err := rows.Err(); err != nil {
-		return nil, 0, fmt.Errorf("claim changes: %w", err)
+		return fail(err)
 	}
 	if _, err := br.Exec(); err != nil {
-		return nil, 0, fmt.Errorf("claim changes: %w", err)
+		return fail(err)
 	}
 	if err := br.Close(); err != nil {
-		return nil, 0, fmt.Errorf("claim changes: %w", err)
+		return fail(err)
 	}
-	return touched, claimed, nil
+	return c, nil
 }
 
 // recomputeDirty rereads from the source every bucket of a min, max or last
@@ -600,7 +687,7 @@ func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
 	if err := s.refreshTrackers(ctx); err != nil {
 		return 0, err
 	}
-	if err := s.advance(ctx, tx, due); err != nil {
+	if err := s.advance(ctx, tx, due, nil); err != nil {
 		return 0, err
 	}
 	if err := tx.Commit(ctx); err != nil {
@@ -657,11 +744,12 @@ type point struct {
 	ends   *time.Time // only when the tracker's calendar is not in Go
 }
 
-// advance locks the given series, loads their states and new points, folds
-// every bucket that is due, and writes the series rows. minTouched is the
-// oldest bucket a change touched (MaxInt64 when none): a change at or before
-// the newest folded bucket means the state is replayed from all points.
-func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID]int64) error {
+// advance locks the given series (unless claim c locked them), loads their
+// states and new points, folds every bucket that is due, and writes the
+// series rows. minTouched is the oldest bucket a change touched (MaxInt64
+// when none): a change at or before the newest folded bucket means the
+// state is replayed from all points.
+func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID]int64, c *claimResult) error {
 	ids := make([]seriesID, 0, len(minTouched))
 	for id := range minTouched {
 		if _, ok := s.trackers[id.tracker]; !ok {
@@ -679,61 +767,54 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		return ids[i].key < ids[j].key
 	})
-	tids := make([]int32, len(ids))
-	keys := make([]string, len(ids))
-	for i, id := range ids {
-		tids[i], keys[i] = int32(id.tracker), id.key
-	}
 	work := make(map[seriesID]*seriesWork, len(ids))
-	if err := s.lockSeries(ctx, tx, tids, keys, minTouched, work); err != nil {
-		return err
-	}
-	if len(work) < len(ids) {
-		// Series seen for the first time: create their rows, then lock
-		// them. (Steady work finds every row and skips this.)
-		var ntids []int32
-		var nkeys []string
-		for i, id := range ids {
-			if work[id] == nil {
-				ntids, nkeys = append(ntids, tids[i]), append(nkeys, keys[i])
+	var missing []seriesID
+	if c != nil {
+		for _, id := range ids {
+			if r, ok := c.series[id]; ok {
+				work[id] = s.newWork(id, r, minTouched[id])
+			} else {
+				missing = append(missing, id)
 			}
 		}
-		if _, err := tx.Exec(ctx, ensureSeriesSQL, ntids, nkeys); err != nil {
+	} else if err := s.lockSeries(ctx, tx, ids, minTouched, work); err != nil {
+		return err
+	} else {
+		for _, id := range ids {
+			if work[id] == nil {
+				missing = append(missing, id)
+			}
+		}
+	}
+	if len(missing) > 0 {
+		// Series seen for the first time: create their rows, then lock
+		// them. (Steady work finds every row and skips this.)
+		tids, keys := seriesColumns(missing)
+		if _, err := tx.Exec(ctx, ensureSeriesSQL, tids, keys); err != nil {
 			return fmt.Errorf("create series rows: %w", err)
 		}
-		if err := s.lockSeries(ctx, tx, ntids, nkeys, minTouched, work); err != nil {
+		if err := s.lockSeries(ctx, tx, missing, minTouched, work); err != nil {
 			return err
 		}
 	}
 
-	after := make([]int64, len(ids))
-	sqlEnds := make([]bool, len(ids))
-	for i, id := range ids {
+	// A series whose unfolded points are all among the claimed ones folds
+	// them as the claim returned them; the others load their points.
+	var load []seriesID
+	for _, id := range ids {
 		w := work[id]
-		after[i] = math.MinInt64
-		sqlEnds[i] = s.trackers[id.tracker].calErr != nil
-		if w != nil && !w.rebuild && w.hasFold {
-			after[i] = w.folded
+		if w == nil {
+			continue
 		}
-	}
-	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after, sqlEnds)
-	if err != nil {
-		return fmt.Errorf("load points: %w", err)
-	}
-	for prow.Next() {
-		var tid int32
-		var key string
-		var p point
-		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
-			prow.Close()
-			return fmt.Errorf("load points: %w", err)
+		if c != nil && !c.dirty[id] && w.claimedSuffice(c.points[id]) {
+			w.points = c.points[id]
+			s.stats.FromClaim++
+			continue
 		}
-		if w := work[seriesID{int(tid), key}]; w != nil {
-			w.points = append(w.points, p)
-		}
+		load = append(load, id)
 	}
-	if err := prow.Err(); err != nil {
-		return fmt.Errorf("load points: %w", err)
+	if err := s.loadPoints(ctx, tx, load, work); err != nil {
+		return err
 	}
 	byBucket := func(a, b point) int { return cmp.Compare(a.bucket, b.bucket) }
 	for _, w := range work {
@@ -799,9 +880,29 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	return recordHistory(ctx, tx, history, prune)
 }
 
-// lockSeries locks the series rows of tids and keys that exist, decodes
-// their states and adds them to work.
-func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys []string, minTouched map[seriesID]int64, work map[seriesID]*seriesWork) error {
+// seriesColumns splits ids into the parallel arrays the statements take.
+func seriesColumns(ids []seriesID) ([]int32, []string) {
+	tids, keys := make([]int32, len(ids)), make([]string, len(ids))
+	for i, id := range ids {
+		tids[i], keys[i] = int32(id.tracker), id.key
+	}
+	return tids, keys
+}
+
+// storedSeries is a series row as a batch reads it, locked.
+type storedSeries struct {
+	folded, first *int64
+	blob          []byte
+	rebuild       bool
+	lambda        *float64
+	lastDir       *string
+	pendingDue    *time.Time
+}
+
+// lockSeries locks the series rows of ids that exist, decodes their states
+// and adds them to work.
+func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, ids []seriesID, minTouched map[seriesID]int64, work map[seriesID]*seriesWork) error {
+	tids, keys := seriesColumns(ids)
 	rows, err := tx.Query(ctx, lockSeriesSQL, tids, keys)
 	if err != nil {
 		return fmt.Errorf("lock series: %w", err)
@@ -809,56 +910,123 @@ func (s *Syncer) lockSeries(ctx context.Context, tx pgx.Tx, tids []int32, keys [
 	for rows.Next() {
 		var tid int32
 		var key string
-		var folded *int64
-		var blob []byte
-		var rebuild bool
-		var lambda *float64
-		var lastDir *string
-		var pendingDue *time.Time
-		var first *int64
-		if err := rows.Scan(&tid, &key, &folded, &first, &blob, &rebuild, &lambda, &lastDir, &pendingDue); err != nil {
+		var r storedSeries
+		if err := rows.Scan(&tid, &key, &r.folded, &r.first, &r.blob, &r.rebuild, &r.lambda, &r.lastDir, &r.pendingDue); err != nil {
 			rows.Close()
 			return fmt.Errorf("lock series: %w", err)
 		}
 		id := seriesID{int(tid), key}
-		w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: rebuild, lambda: lambda, oldPendingDue: pendingDue}
-		w.spec = w.tracker.Spec
-		if lambda != nil {
-			w.spec.Lambda = *lambda // tuned for this series
-		}
-		if folded != nil {
-			w.folded, w.hasFold = *folded, true
-		}
-		if first != nil {
-			w.first = *first
-		}
-		if w.hasFold && minTouched[id] <= w.folded {
-			w.rebuild = true
-		}
-		// Surprises are reported for buckets folded for the first time;
-		// a replay moves the slope direction but announces nothing old,
-		// and a series' first fold (a backfill) announces no history.
-		w.watch = &SurpriseWatch{TrackerID: id.tracker, SeriesKey: key, After: math.MaxInt64}
-		if w.hasFold {
-			w.watch.After = w.folded
-			if lastDir != nil && !w.rebuild {
-				w.watch.LastDirection = *lastDir
-			}
-		}
-		w.oldFolded, w.oldHasFold = w.folded, w.hasFold
-		if !w.rebuild && w.hasFold {
-			st, err := estimator.DecodeFor(blob, w.spec)
-			if err != nil {
-				s.log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", key, "reason", err.Error())
-				w.rebuild = true
-			} else {
-				w.state = st
-			}
-		}
-		work[id] = w
+		work[id] = s.newWork(id, r, minTouched[id])
 	}
 	if err := rows.Err(); err != nil {
 		return fmt.Errorf("lock series: %w", err)
+	}
+	return nil
+}
+
+// newWork decodes a locked series row; minTouched is the oldest bucket a
+// change touched (MaxInt64 when none).
+func (s *Syncer) newWork(id seriesID, r storedSeries, minTouched int64) *seriesWork {
+	w := &seriesWork{id: id, tracker: s.trackers[id.tracker], rebuild: r.rebuild, lambda: r.lambda, oldPendingDue: r.pendingDue}
+	w.spec = w.tracker.Spec
+	if r.lambda != nil {
+		w.spec.Lambda = *r.lambda // tuned for this series
+	}
+	if r.folded != nil {
+		w.folded, w.hasFold = *r.folded, true
+	}
+	if r.first != nil {
+		w.first = *r.first
+	}
+	if w.hasFold && minTouched <= w.folded {
+		w.rebuild = true
+	}
+	// Surprises are reported for buckets folded for the first time;
+	// a replay moves the slope direction but announces nothing old,
+	// and a series' first fold (a backfill) announces no history.
+	w.watch = &SurpriseWatch{TrackerID: id.tracker, SeriesKey: id.key, After: math.MaxInt64}
+	if w.hasFold {
+		w.watch.After = w.folded
+		if r.lastDir != nil && !w.rebuild {
+			w.watch.LastDirection = *r.lastDir
+		}
+	}
+	w.oldFolded, w.oldHasFold = w.folded, w.hasFold
+	if !w.rebuild && w.hasFold {
+		st, err := estimator.DecodeFor(r.blob, w.spec)
+		if err != nil {
+			s.log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", id.key, "reason", err.Error())
+			w.rebuild = true
+		} else {
+			w.state = st
+		}
+	}
+	return w
+}
+
+// claimedSuffice reports whether the points a claim touched (after the
+// newest folded bucket, as a series not replayed has them) are all of the
+// series' points that can still be folded: those after the newest folded
+// bucket with a value are the touched ones and, if the stored row waits
+// for one (pending_due), that bucket, which must then be among them. (A
+// point without rows left has no value and folds nothing.) The claim holds
+// every touched point's row lock, so no other transaction can change them
+// before this one commits.
+func (w *seriesWork) claimedSuffice(touched []point) bool {
+	if w.rebuild || w.state == nil || !w.hasFold || w.tracker.calErr != nil || len(touched) == 0 {
+		return false
+	}
+	if w.oldPendingDue == nil {
+		return true
+	}
+	pending := w.tracker.cal.Index(*w.oldPendingDue) - 1
+	if end, ok := w.tracker.bucketEnd(pending); !ok || !end.Equal(*w.oldPendingDue) {
+		return false
+	}
+	for _, p := range touched {
+		if p.bucket == pending {
+			return true
+		}
+	}
+	return false
+}
+
+// loadPoints loads the points of ids after their newest folded bucket (all
+// of them for a replay) into work.
+func (s *Syncer) loadPoints(ctx context.Context, tx pgx.Tx, ids []seriesID, work map[seriesID]*seriesWork) error {
+	if len(ids) == 0 {
+		return nil
+	}
+	tids, keys := seriesColumns(ids)
+	after := make([]int64, len(ids))
+	sqlEnds := make([]bool, len(ids))
+	for i, id := range ids {
+		w := work[id]
+		after[i] = math.MinInt64
+		sqlEnds[i] = w.tracker.calErr != nil
+		if !w.rebuild && w.hasFold {
+			after[i] = w.folded
+		}
+		w.points = w.points[:0]
+	}
+	prow, err := tx.Query(ctx, pointsSQL, tids, keys, after, sqlEnds)
+	if err != nil {
+		return fmt.Errorf("load points: %w", err)
+	}
+	for prow.Next() {
+		var tid int32
+		var key string
+		var p point
+		if err := prow.Scan(&tid, &key, &p.bucket, &p.n, &p.sum, &p.min, &p.max, &p.last, &p.ends); err != nil {
+			prow.Close()
+			return fmt.Errorf("load points: %w", err)
+		}
+		if w := work[seriesID{int(tid), key}]; w != nil {
+			w.points = append(w.points, p)
+		}
+	}
+	if err := prow.Err(); err != nil {
+		return fmt.Errorf("load points: %w", err)
 	}
 	return nil
 }

@@ -7,6 +7,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"runtime"
+	"slices"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -709,5 +710,63 @@ func TestBucketEndsSQLFallback(t *testing.T) {
 	}
 	if len(checked) != 4 || checked["hourly_kolkata"] < 400 || checked["monthly_sao_paulo"] < 4 {
 		t.Errorf("points checked per tracker: %v; want all four trackers, every point", checked)
+	}
+}
+
+// TestOpenBucketsMatchOffline drains rows as they arrive live: the clock is
+// at the newest row inserted, so each series has an open bucket (today)
+// that later batches add to, folded from the points the claim returns, and
+// that a later day's rows close, which loads the open bucket's point. At
+// the end the clock passes every bucket and the forecasts must equal a
+// from-scratch fit, as in TestPipelineMatchesOffline; on the way, a series
+// never folds its open bucket.
+func TestOpenBucketsMatchOffline(t *testing.T) {
+	t.Parallel()
+	for _, c := range []struct{ batch, workers int }{{DefaultBatchSize, DefaultWorkers}, {5, 3}} {
+		t.Run(fmt.Sprintf("batch=%d/workers=%d", c.batch, c.workers), func(t *testing.T) {
+			t.Parallel()
+			pool, _ := newDB(t)
+			ctx := context.Background()
+			rng := rand.New(rand.NewPCG(3, 7))
+			createSales(t, pool, "sales")
+			all := salesRows(rng, 4, 40, 4)
+			slices.SortFunc(all, func(a, b []any) int { return a[0].(time.Time).Compare(b[0].(time.Time)) })
+			var clock atomic.Int64 // the Syncer's now, in Unix microseconds
+			s := NewSyncer(pool, nil)
+			s.BatchSize, s.Workers = c.batch, c.workers
+			s.now = func() time.Time { return time.UnixMicro(clock.Load()) }
+			for rest := all; len(rest) > 0; {
+				n := min(1+rng.IntN(12), len(rest))
+				insertRows(t, pool, "sales", rest[:n])
+				clock.Store(rest[n-1][0].(time.Time).UnixMicro())
+				rest = rest[n:]
+				if rng.IntN(3) != 0 {
+					continue
+				}
+				if err := s.CatchUp(ctx); err != nil {
+					t.Fatal(err)
+				}
+				// Every bucket folded has ended by the clock.
+				var early int
+				if err := pool.QueryRow(ctx, `
+					SELECT count(*) FROM sidetrend.series s JOIN sidetrend.trackers t ON t.id = s.tracker_id
+					WHERE sidetrend.bucket_start(s.folded_through + 1, t.bucket, t.tz) > $1`,
+					time.UnixMicro(clock.Load())).Scan(&early); err != nil {
+					t.Fatal(err)
+				}
+				if early != 0 {
+					t.Fatalf("%d series folded a bucket that has not ended at %s", early, time.UnixMicro(clock.Load()).UTC())
+				}
+			}
+			clock.Store(time.Now().UnixMicro())
+			if err := s.CatchUp(ctx); err != nil {
+				t.Fatal(err)
+			}
+			compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", salesSpec), 14)
+			st := s.Stats()
+			if st.FromClaim == 0 || st.FromClaim >= st.Series {
+				t.Errorf("stats %+v: want some series advanced from the claimed points alone and some from loaded points", st)
+			}
+		})
 	}
 }
