@@ -363,7 +363,7 @@ func TestHistoryOff(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer tx.Rollback(ctx)
-	f := IssuedForecast{TrackerID: tid, SeriesKey: "a", IssuedFor: 9000, Yhat: []float64{1, 2}, Lo95: []float64{0, math.NaN()}, Hi95: []float64{2, math.NaN()}}
+	f := IssuedForecast{TrackerID: tid, SeriesKey: "a", IssuedFor: 9000, Yhat: []float64{1, 2}, SE: []float64{0.5, math.NaN()}, T95: 2}
 	if err := RecordHistory(ctx, tx, []IssuedForecast{f}); err != nil {
 		t.Fatal(err)
 	}
@@ -372,9 +372,9 @@ func TestHistoryOff(t *testing.T) {
 		t.Errorf("history_buckets = 0 kept %d rows (err %v)", n, err)
 	}
 	bad := f
-	bad.Hi95 = bad.Hi95[:1]
-	if err := RecordHistory(ctx, tx, []IssuedForecast{bad}); err == nil || !strings.Contains(err.Error(), "interval bounds") {
-		t.Errorf("mismatched slices: err %v, want one about interval bounds", err)
+	bad.SE = bad.SE[:1]
+	if err := RecordHistory(ctx, tx, []IssuedForecast{bad}); err == nil || !strings.Contains(err.Error(), "standard errors") {
+		t.Errorf("mismatched slices: err %v, want one about standard errors", err)
 	}
 }
 

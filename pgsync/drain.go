@@ -85,9 +85,11 @@ WITH claimed AS (
 ), locked AS (
     SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild,
            s.lambda, s.last_direction, s.pending_due
-    FROM sidetrend.series s
-    WHERE (s.tracker_id, s.series_key) IN (SELECT tracker_id, series_key FROM up)
-    ORDER BY s.tracker_id, s.series_key
+    -- The keys are sorted, not the rows (which carry the states): a nested
+    -- loop locks in the order of its outer side. (A deadlock, should a plan
+    -- ever lock in another order, is retried.)
+    FROM (SELECT DISTINCT tracker_id, series_key FROM up ORDER BY 1, 2) k
+    JOIN sidetrend.series s ON s.tracker_id = k.tracker_id AND s.series_key = k.series_key
     FOR UPDATE OF s
 )
 SELECT ` + strconv.Itoa(claimPoint) + ` AS kind, tracker_id, series_key, bucket, n, sum, min, max, last_v, dirty,
@@ -832,8 +834,6 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	var goneTids []int32 // series with no point left
 	var goneKeys []string
 	var surprises []Surprise
-	var history []IssuedForecast
-	var prune []bool // of each history entry: whether older issues may be due for deletion
 	for _, id := range ids {
 		w := work[id]
 		if w == nil {
@@ -856,16 +856,17 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		s.stats.Series++
 		surprises = append(surprises, w.watch.Events...)
 		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
-			history = append(history, ServedForecast(id.tracker, id.key, w.folded, w.served))
 			// Forecasts are issued at folded buckets, none before the
 			// series' first; until history_buckets have passed since then
-			// there is nothing to prune. A replay may have moved the first
-			// bucket later, and a tracker keeping no history prunes all.
-			prune = append(prune, w.rebuild || w.tracker.History == 0 || w.folded-int64(w.tracker.History) >= w.first)
+			// there is nothing to prune (the prune's index probe per
+			// series was a tenth of a drain's time in Postgres for young
+			// series). A replay may have moved the first bucket later, and
+			// a tracker keeping no history prunes all.
+			out.issue(w.rebuild || w.tracker.History == 0 || w.folded-int64(w.tracker.History) >= w.first)
 		}
 	}
 	if out.len() > 0 {
-		if _, err := tx.Exec(ctx, updateSeriesSQL, out.args()...); err != nil {
+		if _, err := tx.Exec(ctx, writeSeriesSQL, out.args()...); err != nil {
 			return fmt.Errorf("write series: %w", err)
 		}
 	}
@@ -874,10 +875,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			return fmt.Errorf("delete empty series: %w", err)
 		}
 	}
-	if err := RecordSurprises(ctx, tx, surprises); err != nil {
-		return err
-	}
-	return recordHistory(ctx, tx, history, prune)
+	return RecordSurprises(ctx, tx, surprises)
 }
 
 // seriesColumns splits ids into the parallel arrays the statements take.

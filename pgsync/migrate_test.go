@@ -2,6 +2,7 @@ package pgsync
 
 import (
 	"context"
+	"strings"
 	"testing"
 
 	"github.com/jackc/pgx/v5/stdlib"
@@ -79,5 +80,84 @@ func TestThroughputMigrationDownUp(t *testing.T) {
 	}
 	if got := bounds(); got != served {
 		t.Errorf("forecasts after Down, Up and a replay:\n%s\nwant as served before:\n%s", got, served)
+	}
+}
+
+// TestHistorySEMigrationDownUp steps migration 00006 down and up again on a
+// database with forecast history written in both layouts: Down computes the
+// bounds of rows that store standard errors, Up leaves every row as it is,
+// and sidetrend.forecast_history reads the same, to the last digit, all
+// along.
+func TestHistorySEMigrationDownUp(t *testing.T) {
+	t.Parallel()
+	pool, url := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE sales (at timestamptz, v float8)`)
+	exec(t, pool, `SELECT sidetrend.track('sales', 'at', 'v', horizon => 3)`)
+	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', d + (d % 3) FROM generate_series(0, 9) d`)
+	cfg, err := parseConfig(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	db := stdlib.OpenDB(*cfg.ConnConfig)
+	defer db.Close()
+	p, err := newMigrationProvider(db)
+	if err != nil {
+		t.Fatal(err)
+	}
+	history := func() string {
+		t.Helper()
+		var s string
+		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', issued_for, horizon, period_start, yhat, lo95, hi95), '; '
+			ORDER BY issued_for, horizon), '') FROM sidetrend.forecast_history`).Scan(&s)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return s
+	}
+	s := NewSyncer(pool, nil)
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	// Down: history rows written so far get their bounds computed.
+	written := history()
+	if written == "" {
+		t.Fatal("no forecast history to compare")
+	}
+	if _, err := p.DownTo(ctx, 5); err != nil {
+		t.Fatalf("down to 5: %v", err)
+	}
+	if got := history(); got != written {
+		t.Fatalf("history after Down:\n%s\nwant as written:\n%s", got, written)
+	}
+	if _, err := p.Up(ctx); err != nil {
+		t.Fatalf("up again: %v", err)
+	}
+	// Rows with stored bounds (from Down) and with standard errors (new
+	// issues) side by side.
+	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', 2 * d FROM generate_series(10, 13) d`)
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	var stored, withSE int
+	if err := pool.QueryRow(ctx, `SELECT count(*) FILTER (WHERE se IS NULL AND lo95 IS NOT NULL), count(*) FILTER (WHERE se IS NOT NULL AND lo95 IS NULL)
+		FROM sidetrend.forecast_issues`).Scan(&stored, &withSE); err != nil {
+		t.Fatal(err)
+	}
+	if stored == 0 || withSE == 0 {
+		t.Fatalf("%d history rows with stored bounds and %d with standard errors; want some of each", stored, withSE)
+	}
+	mixed := history()
+	if !strings.HasPrefix(mixed, written) || len(mixed) == len(written) {
+		t.Fatalf("history after Up and more rows:\n%s\nwant it to start with:\n%s", mixed, written)
+	}
+	if _, err := p.DownTo(ctx, 5); err != nil {
+		t.Fatalf("down to 5 again: %v", err)
+	}
+	if got := history(); got != mixed {
+		t.Fatalf("history after the second Down:\n%s\nwant:\n%s", got, mixed)
+	}
+	if _, err := p.Up(ctx); err != nil {
+		t.Fatalf("up at the end: %v", err)
 	}
 }

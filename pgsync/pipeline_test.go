@@ -587,9 +587,11 @@ func TestDrainAllWaitsForHeldChanges(t *testing.T) {
 
 // TestForecastBoundsFromStoredSE: the forecasts view forms every interval
 // bound from the stored forecast, standard error and t quantile (migration
-// 00005) with the operations the estimator uses, yhat -+ t SE. Each bound
-// must equal the estimator's own Forecast of the stored state: to the last
-// bit on amd64, where Go fuses no multiply-add; within 1e-15 elsewhere.
+// 00005) with the operations the estimator uses, yhat -+ t SE, and so does
+// the forecast history for the forecast issued at the newest folded bucket
+// (migration 00006). Each bound must equal the estimator's own Forecast of
+// the stored state: to the last bit on amd64, where Go fuses no
+// multiply-add; within 1e-15 elsewhere.
 func TestForecastBoundsFromStoredSE(t *testing.T) {
 	t.Parallel()
 	pool, _ := newDB(t)
@@ -604,9 +606,12 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 		tol = 1e-15
 	}
 	rows, err := pool.Query(ctx, `
-		SELECT s.series_key, s.state, f.horizon, f.lo80, f.hi80, f.lo95, f.hi95, f.cum_lo95, f.cum_hi95
+		SELECT s.series_key, s.state, f.horizon, f.lo80, f.hi80, f.lo95, f.hi95, f.cum_lo95, f.cum_hi95,
+		       h.yhat, h.lo95, h.hi95
 		FROM sidetrend.forecasts f
 		JOIN sidetrend.series s ON s.series_key = f.series_key
+		JOIN sidetrend.forecast_history h
+		  ON h.series_key = f.series_key AND h.issued_for = s.folded_through AND h.horizon = f.horizon
 		ORDER BY 1, 3`)
 	if err != nil {
 		t.Fatal(err)
@@ -617,8 +622,8 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 		var key string
 		var blob []byte
 		var h int
-		var got [6]float64
-		if err := rows.Scan(&key, &blob, &h, &got[0], &got[1], &got[2], &got[3], &got[4], &got[5]); err != nil {
+		var got [9]float64
+		if err := rows.Scan(&key, &blob, &h, &got[0], &got[1], &got[2], &got[3], &got[4], &got[5], &got[6], &got[7], &got[8]); err != nil {
 			t.Fatal(err)
 		}
 		st, err := estimator.DecodeFor(blob, salesSpec)
@@ -630,10 +635,11 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 			t.Fatal(err)
 		}
 		i := h - 1
-		want := [6]float64{fc.Lo80[i], fc.Hi80[i], fc.Lo95[i], fc.Hi95[i], fc.CumLo95[i], fc.CumHi95[i]}
+		want := [9]float64{fc.Lo80[i], fc.Hi80[i], fc.Lo95[i], fc.Hi95[i], fc.CumLo95[i], fc.CumHi95[i],
+			fc.Yhat[i], fc.Lo95[i], fc.Hi95[i]}
 		for k := range want {
 			if d := math.Abs(got[k] - want[k]); d > tol*math.Abs(want[k]) {
-				t.Errorf("%s h=%d bound %d: view %v, estimator %v", key, h, k, got[k], want[k])
+				t.Errorf("%s h=%d value %d (6-8: history): view %v, estimator %v", key, h, k, got[k], want[k])
 			}
 		}
 		checked++
