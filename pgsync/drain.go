@@ -221,9 +221,11 @@ type Stats struct {
 	Rebuilds  int64 // series replayed from their points
 	Backfills int64 // trackers backfilled from their source table
 	Retries   int64 // batches retried after a deadlock or serialization failure
-	// FromClaim counts series advanced from the points their claim returned,
-	// without reading sidetrend.points (see claimedSuffice).
+	// FromClaim counts series handled with the points their claim returned
+	// (see claimedSuffice), Loaded those whose points were read from
+	// sidetrend.points.
 	FromClaim int64
+	Loaded    int64
 }
 
 func (st *Stats) add(o Stats) {
@@ -234,6 +236,7 @@ func (st *Stats) add(o Stats) {
 	st.Backfills += o.Backfills
 	st.Retries += o.Retries
 	st.FromClaim += o.FromClaim
+	st.Loaded += o.Loaded
 }
 
 // NewSyncer returns a Syncer on pool.
@@ -729,6 +732,7 @@ type seriesWork struct {
 	first      int64
 	rebuild    bool
 	points     []point
+	blob       []byte // the stored state, decoded into state when needed
 
 	oldPendingDue *time.Time // pending_due as stored
 	// unchanged: nothing was folded and the row as stored is still right
@@ -801,7 +805,11 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	}
 
 	// A series whose unfolded points are all among the claimed ones folds
-	// them as the claim returned them; the others load their points.
+	// them as the claim returned them, or, when they only add to the bucket
+	// it waits for, is left as it is without decoding its state; the others
+	// load their points.
+	now := s.now()
+	byBucket := func(a, b point) int { return cmp.Compare(a.bucket, b.bucket) }
 	var load []seriesID
 	for _, id := range ids {
 		w := work[id]
@@ -809,23 +817,34 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			continue
 		}
 		if c != nil && !c.dirty[id] && w.claimedSuffice(c.points[id]) {
-			w.points = c.points[id]
-			s.stats.FromClaim++
-			continue
+			points := c.points[id]
+			if !slices.IsSortedFunc(points, byBucket) {
+				slices.SortFunc(points, byBucket)
+			}
+			if vals, due, err := w.tracker.dueValues(points, now); err == nil && w.unchangedBy(vals, due) {
+				w.unchanged = true
+				s.stats.FromClaim++
+				continue
+			}
+			if w.decode(s.log); !w.rebuild {
+				w.points = points
+				s.stats.FromClaim++
+				continue
+			}
 		}
+		w.decode(s.log)
 		load = append(load, id)
 	}
 	if err := s.loadPoints(ctx, tx, load, work); err != nil {
 		return err
 	}
-	byBucket := func(a, b point) int { return cmp.Compare(a.bucket, b.bucket) }
-	for _, w := range work {
-		if !slices.IsSortedFunc(w.points, byBucket) {
+	s.stats.Loaded += int64(len(load))
+	for _, id := range load {
+		if w := work[id]; !slices.IsSortedFunc(w.points, byBucket) {
 			slices.SortFunc(w.points, byBucket)
 		}
 	}
 
-	now := s.now()
 	maxH := 0
 	for _, t := range s.trackers {
 		maxH = max(maxH, t.Horizon)
@@ -836,7 +855,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	var surprises []Surprise
 	for _, id := range ids {
 		w := work[id]
-		if w == nil {
+		if w == nil || w.unchanged {
 			continue
 		}
 		if w.rebuild {
@@ -950,16 +969,23 @@ func (s *Syncer) newWork(id seriesID, r storedSeries, minTouched int64) *seriesW
 		}
 	}
 	w.oldFolded, w.oldHasFold = w.folded, w.hasFold
-	if !w.rebuild && w.hasFold {
-		st, err := estimator.DecodeFor(r.blob, w.spec)
-		if err != nil {
-			s.log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", id.key, "reason", err.Error())
-			w.rebuild = true
-		} else {
-			w.state = st
-		}
-	}
+	w.blob = r.blob
 	return w
+}
+
+// decode decodes w's stored state (a series that folded before and is not
+// replayed); a state that does not decode is replaced by a replay.
+func (w *seriesWork) decode(log *slog.Logger) {
+	if w.rebuild || !w.hasFold || w.state != nil {
+		return
+	}
+	st, err := estimator.DecodeFor(w.blob, w.spec)
+	if err != nil {
+		log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", w.id.key, "reason", err.Error())
+		w.rebuild = true
+		return
+	}
+	w.state = st
 }
 
 // claimedSuffice reports whether the points a claim touched (after the
@@ -971,7 +997,7 @@ func (s *Syncer) newWork(id seriesID, r storedSeries, minTouched int64) *seriesW
 // every touched point's row lock, so no other transaction can change them
 // before this one commits.
 func (w *seriesWork) claimedSuffice(touched []point) bool {
-	if w.rebuild || w.state == nil || !w.hasFold || w.tracker.calErr != nil || len(touched) == 0 {
+	if w.rebuild || !w.hasFold || w.tracker.calErr != nil || len(touched) == 0 {
 		return false
 	}
 	if w.oldPendingDue == nil {
@@ -1078,29 +1104,11 @@ func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (bool, erro
 func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
 	t := w.tracker
 	var lastErr *string
-	// Points with a value, in bucket order; the newest one is folded only
-	// once the clock has passed its end (a later bucket always closes it).
-	vals := make([]point, 0, len(w.points))
-	for _, p := range w.points {
-		if _, ok := t.value(p); ok {
-			vals = append(vals, p)
-		}
+	vals, pendingDue, err := t.dueValues(w.points, now)
+	if err != nil {
+		return false, err
 	}
-	var pendingDue *time.Time
-	if n := len(vals); n > 0 {
-		ends, ok := t.bucketEnd(vals[n-1].bucket)
-		if !ok && vals[n-1].ends != nil {
-			ends, ok = *vals[n-1].ends, true
-		}
-		if !ok {
-			return false, fmt.Errorf("tracker %q: no end for bucket %d", t.Name, vals[n-1].bucket)
-		}
-		if now.Before(ends) {
-			pendingDue = &ends
-			vals = vals[:n-1]
-		}
-	}
-	if len(vals) == 0 && !w.rebuild && pendingDue != nil && w.oldPendingDue != nil && pendingDue.Equal(*w.oldPendingDue) {
+	if w.unchangedBy(vals, pendingDue) {
 		w.unchanged = true
 		return true, nil
 	}
@@ -1140,6 +1148,40 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 	}
 	w.served = out.add(w, w.state, pendingDue, lastErr)
 	return true, nil
+}
+
+// dueValues returns the points (in bucket order) with a value that are due
+// to be folded, and the end of the newest one if the clock has not passed
+// it: that one waits (a later bucket with data always closes it).
+func (t *Tracker) dueValues(points []point, now time.Time) ([]point, *time.Time, error) {
+	vals := make([]point, 0, len(points))
+	for _, p := range points {
+		if _, ok := t.value(p); ok {
+			vals = append(vals, p)
+		}
+	}
+	n := len(vals)
+	if n == 0 {
+		return vals, nil, nil
+	}
+	ends, ok := t.bucketEnd(vals[n-1].bucket)
+	if !ok && vals[n-1].ends != nil {
+		ends, ok = *vals[n-1].ends, true
+	}
+	if !ok {
+		return nil, nil, fmt.Errorf("tracker %q: no end for bucket %d", t.Name, vals[n-1].bucket)
+	}
+	if now.Before(ends) {
+		return vals[:n-1], &ends, nil
+	}
+	return vals, nil, nil
+}
+
+// unchangedBy reports whether folding vals, with the newest bucket waiting
+// until pendingDue, leaves w's row as stored: nothing to fold and the same
+// bucket waiting (rows that only add to a bucket still open).
+func (w *seriesWork) unchangedBy(vals []point, pendingDue *time.Time) bool {
+	return len(vals) == 0 && !w.rebuild && pendingDue != nil && w.oldPendingDue != nil && pendingDue.Equal(*w.oldPendingDue)
 }
 
 // fillGap advances over buckets without rows: zeros when the tracker says

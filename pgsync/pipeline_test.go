@@ -770,8 +770,8 @@ func TestOpenBucketsMatchOffline(t *testing.T) {
 			}
 			compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", salesSpec), 14)
 			st := s.Stats()
-			if st.FromClaim == 0 || st.FromClaim >= st.Series {
-				t.Errorf("stats %+v: want some series advanced from the claimed points alone and some from loaded points", st)
+			if st.FromClaim == 0 || st.Loaded == 0 {
+				t.Errorf("stats %+v: want some series handled with the claimed points alone and some with loaded points", st)
 			}
 		})
 	}
