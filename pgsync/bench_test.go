@@ -580,12 +580,17 @@ func startBenchRunner(b *testing.B, dbURL string, onBatch func(BatchInfo)) {
 // arrays written.
 //
 // mode=sustained: each op writes one day for every series while an
-// in-process Runner, woken by NOTIFY, drains concurrently; the op ends when
-// the sidecar has committed every change of that day. The days are long
+// in-process Runner, woken by NOTIFY, drains concurrently. The ops follow
+// each other without waiting for the sidecar, as a busy source writes, and
+// the timer stops when the sidecar has committed every change of every op:
+// rows/s is the rate of a stream the sidecar keeps up with (a sidecar
+// slower than the writer shows as a change log that grows until the end,
+// and the time to drain it counts). (Until 2026-12-02 each op waited for
+// its own day to be drained, which added a drain's tail to every op: 10 %
+// to 20 % fewer rows/s at 10,000 series.) The days are long
 // past, so every bucket is closed when it arrives and each source row is
 // folded into its series' state by the batch that claims it: the heaviest
-// case, one fold and one forecast per row. rows/s is the end-to-end rate a
-// source can keep up without the change log growing.
+// case, one fold and one forecast per row.
 //
 // mode=live: the same, but every row is stamped now, in today's still open
 // bucket: each row adds to its bucket's aggregate and nothing is folded
@@ -621,7 +626,10 @@ func BenchmarkPipeline(b *testing.B) {
 					report := statementProfile(b, k.pool)
 					b.ReportAllocs()
 					day, target := kioskWarmDays, int64(0)
-					for b.Loop() {
+					b.ResetTimer()
+					// The classic loop, not b.Loop: the timer must run on
+					// after the last op, until the sidecar has caught up.
+					for i := 0; i < b.N; i++ {
 						at := time.Time{}
 						if mode == "live" {
 							at = time.Now()
@@ -631,8 +639,9 @@ func BenchmarkPipeline(b *testing.B) {
 							day++
 						}
 						target += int64(n) // one change row per row: each statement holds distinct kiosks
-						counter.waitFor(b, target)
 					}
+					counter.waitFor(b, target)
+					b.StopTimer()
 					b.ReportMetric(float64(target)/b.Elapsed().Seconds(), "rows/s")
 					report()
 					if mode == "sustained" {
