@@ -6,7 +6,25 @@ import (
 	"testing"
 
 	"github.com/jackc/pgx/v5/stdlib"
+	"github.com/pressly/goose/v3"
 )
+
+// testMigrationProvider is the goose provider of the sidecar's migrations
+// on the database at url, closed when t ends.
+func testMigrationProvider(t *testing.T, url string) *goose.Provider {
+	t.Helper()
+	cfg, err := parseConfig(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	db := stdlib.OpenDB(*cfg.ConnConfig)
+	t.Cleanup(func() { db.Close() })
+	p, err := newMigrationProvider(db)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return p
+}
 
 // TestThroughputMigrationDownUp steps migration 00005 down and up again on a
 // database with a tracker and forecast history: Down puts the foreign key
@@ -22,16 +40,7 @@ func TestThroughputMigrationDownUp(t *testing.T) {
 	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
 		t.Fatal(err)
 	}
-	cfg, err := parseConfig(url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	db := stdlib.OpenDB(*cfg.ConnConfig)
-	defer db.Close()
-	p, err := newMigrationProvider(db)
-	if err != nil {
-		t.Fatal(err)
-	}
+	p := testMigrationProvider(t, url)
 	state := func() (fk, trigger bool, history int) {
 		t.Helper()
 		err := pool.QueryRow(ctx, `
@@ -95,16 +104,7 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 	exec(t, pool, `CREATE TABLE sales (at timestamptz, v float8)`)
 	exec(t, pool, `SELECT sidetrend.track('sales', 'at', 'v', horizon => 3)`)
 	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', d + (d % 3) FROM generate_series(0, 9) d`)
-	cfg, err := parseConfig(url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	db := stdlib.OpenDB(*cfg.ConnConfig)
-	defer db.Close()
-	p, err := newMigrationProvider(db)
-	if err != nil {
-		t.Fatal(err)
-	}
+	p := testMigrationProvider(t, url)
 	history := func() string {
 		t.Helper()
 		var s string
@@ -124,15 +124,21 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 	if written == "" {
 		t.Fatal("no forecast history to compare")
 	}
-	if _, err := p.DownTo(ctx, 5); err != nil {
-		t.Fatalf("down to 5: %v", err)
+	// downAndUp steps 00006 down, checks that the history still reads
+	// want, and steps it up again.
+	downAndUp := func(want, when string) {
+		t.Helper()
+		if _, err := p.DownTo(ctx, 5); err != nil {
+			t.Fatalf("%s: down to 5: %v", when, err)
+		}
+		if got := history(); got != want {
+			t.Fatalf("history after Down (%s):\n%s\nwant:\n%s", when, got, want)
+		}
+		if _, err := p.Up(ctx); err != nil {
+			t.Fatalf("%s: up again: %v", when, err)
+		}
 	}
-	if got := history(); got != written {
-		t.Fatalf("history after Down:\n%s\nwant as written:\n%s", got, written)
-	}
-	if _, err := p.Up(ctx); err != nil {
-		t.Fatalf("up again: %v", err)
-	}
+	downAndUp(written, "standard errors only")
 	// Rows with stored bounds (from Down) and with standard errors (new
 	// issues) side by side.
 	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', 2 * d FROM generate_series(10, 13) d`)
@@ -151,13 +157,5 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 	if !strings.HasPrefix(mixed, written) || len(mixed) == len(written) {
 		t.Fatalf("history after Up and more rows:\n%s\nwant it to start with:\n%s", mixed, written)
 	}
-	if _, err := p.DownTo(ctx, 5); err != nil {
-		t.Fatalf("down to 5 again: %v", err)
-	}
-	if got := history(); got != mixed {
-		t.Fatalf("history after the second Down:\n%s\nwant:\n%s", got, mixed)
-	}
-	if _, err := p.Up(ctx); err != nil {
-		t.Fatalf("up at the end: %v", err)
-	}
+	downAndUp(mixed, "both layouts")
 }
