@@ -157,8 +157,9 @@ ORDER BY 1, 2 LIMIT 1000`
 // 10 rows a commit) take less time than a second worker's empty claim.
 const helpersFrom = 100
 
-// DefaultWorkers is how many transactions drain a backlog at once: two
-// measured best on this project's 2-core benchmark machine (README).
+// DefaultWorkers is how many transactions drain the change log at once: two
+// measured best on this project's 2-core benchmark machine (README); three
+// measured no better on 2026-12-02, within the machine's noise.
 const DefaultWorkers = 2
 
 // Syncer drains the change log and keeps series states current. It holds no
@@ -176,7 +177,7 @@ type Syncer struct {
 	// OnBatch, if set, is called after every committed batch, from several
 	// goroutines at once when Workers > 1.
 	OnBatch func(BatchInfo)
-	// Workers is how many transactions drain a backlog at once (see
+	// Workers is how many transactions drain the change log at once (see
 	// drainLog); NewSyncer sets DefaultWorkers.
 	Workers int
 	// BatchSize is how many change rows a drain transaction claims at most;

@@ -22,7 +22,7 @@ func runCommand() *cli.Command {
 			dbFlag,
 			&cli.BoolFlag{Name: "once", Usage: "drain everything pending, fold every due bucket, and exit", EnvVars: []string{"SIDETREND_ONCE"}},
 			&cli.DurationFlag{Name: "poll", Value: 5 * time.Second, Usage: "fallback poll interval when no NOTIFY arrives", EnvVars: []string{"SIDETREND_POLL"}},
-			&cli.IntFlag{Name: "workers", Value: pgsync.DefaultWorkers, Usage: "transactions that drain a backlog of changes at once", EnvVars: []string{"SIDETREND_WORKERS"}},
+			&cli.IntFlag{Name: "workers", Value: pgsync.DefaultWorkers, Usage: "transactions that drain changes at once when more than a handful wait", EnvVars: []string{"SIDETREND_WORKERS"}},
 			&cli.IntFlag{Name: "batch-size", Value: pgsync.DefaultBatchSize, Usage: "change rows one drain transaction claims at most", EnvVars: []string{"SIDETREND_BATCH_SIZE"}},
 			&cli.BoolFlag{Name: "migrate", Value: true, Usage: "apply pending migrations on start", EnvVars: []string{"SIDETREND_MIGRATE"}},
 			&cli.StringFlag{Name: "http", Usage: "serve /metrics (Prometheus) and /healthz on this address, e.g. 127.0.0.1:9188; off when empty", EnvVars: []string{"SIDETREND_HTTP"}},
