@@ -726,7 +726,7 @@ type seriesWork struct {
 	watch      *SurpriseWatch
 	oldFolded  int64 // newest folded bucket before this batch
 	oldHasFold bool
-	served     *estimator.Forecast // the forecast written, if any
+	served     bool // a forecast was written
 	state      *estimator.State
 	folded     int64 // newest folded bucket, valid when hasFold
 	hasFold    bool
@@ -817,7 +817,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		if w == nil {
 			continue
 		}
-		if c != nil && !c.dirty[id] && w.claimedSuffice(c.points[id]) {
+		claimed := c != nil && !c.dirty[id] && w.claimedSuffice(c.points[id])
+		if claimed {
 			points := c.points[id]
 			if !slices.IsSortedFunc(points, byBucket) {
 				slices.SortFunc(points, byBucket)
@@ -827,13 +828,13 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 				s.stats.FromClaim++
 				continue
 			}
-			if w.decode(s.log); !w.rebuild {
-				w.points = points
-				s.stats.FromClaim++
-				continue
-			}
+			w.points = points
 		}
-		w.decode(s.log)
+		// A state that does not decode is replayed, from all points.
+		if w.decode(s.log); claimed && !w.rebuild {
+			s.stats.FromClaim++
+			continue
+		}
 		load = append(load, id)
 	}
 	if err := s.loadPoints(ctx, tx, load, work); err != nil {
@@ -875,7 +876,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		s.stats.Series++
 		surprises = append(surprises, w.watch.Events...)
-		if w.served != nil && (!w.oldHasFold || w.folded > w.oldFolded) {
+		if w.served && (!w.oldHasFold || w.folded > w.oldFolded) {
 			// Forecasts are issued at folded buckets, none before the
 			// series' first; until history_buckets have passed since then
 			// there is nothing to prune (the prune's index probe per
@@ -1155,7 +1156,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 		out.add(w, nil, pendingDue, lastErr)
 		return true, nil
 	}
-	w.served = out.add(w, w.state, pendingDue, lastErr)
+	w.served = out.add(w, w.state, pendingDue, lastErr) != nil
 	return true, nil
 }
 

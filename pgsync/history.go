@@ -1,38 +1,11 @@
 package pgsync
 
-import (
-	"context"
-	"fmt"
-
-	"github.com/jackc/pgx/v5"
-
-	"github.com/sidetrend/sidetrend/estimator"
-)
-
-// IssuedForecast is the forecast of one series as the sidecar served it:
-// issued at bucket IssuedFor (the newest folded bucket N), with index l-1 of
-// each slice the forecast for bucket N + l and its standard error; T95 is
-// the 95 % t quantile it was served with (NaN while there is no interval).
-// sidetrend.forecast_history forms the bounds, Yhat -+ T95 SE.
-type IssuedForecast struct {
-	TrackerID int
-	SeriesKey string
-	IssuedFor int64
-	Yhat      []float64
-	SE        []float64 // NaN while there is no interval
-	T95       float64
-}
-
-// ServedForecast is the IssuedForecast of a forecast just computed.
-func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Forecast) IssuedForecast {
-	return IssuedForecast{TrackerID: trackerID, SeriesKey: key, IssuedFor: issuedFor,
-		Yhat: fc.Yhat, SE: fc.SE, T95: fc.T95}
-}
-
-// historySQL returns the statement tail that records served forecasts and
-// prunes old ones, given a relation issued(tid, key, issued_for, yhat, se,
-// t95, prune) defined before it in a WITH list (writeSeriesSQL defines it
-// as the series update's RETURNING, RecordHistory from its parameters).
+// historyTailSQL is the statement tail that records served forecasts in
+// sidetrend.forecast_issues (read through the view sidetrend.forecast_history)
+// and prunes old ones, given a relation issued(tid, key, issued_for, yhat,
+// se, t95, prune) defined before it in a WITH list: writeSeriesSQL defines
+// it as the series update's RETURNING. The bounds are formed by the view,
+// yhat -+ t95 se.
 //
 // The insert keeps the first forecast served for a (series, issue bucket):
 // a replay that serves again at the same bucket does not rewrite what users
@@ -41,8 +14,7 @@ func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Fo
 // history_buckets buckets: issued_for > newest - history_buckets. (The
 // prune's statement does not see the row the insert adds, which is the
 // newest and never pruned.)
-func historySQL() string {
-	return `, recorded AS (
+const historyTailSQL = `, recorded AS (
     INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, yhat, se, t95)
     SELECT i.tid, i.key, i.issued_for, i.yhat, i.se, i.t95
     FROM issued i JOIN sidetrend.trackers t ON t.id = i.tid
@@ -53,45 +25,3 @@ DELETE FROM sidetrend.forecast_issues h
 USING (SELECT tid, key, max(issued_for) AS newest FROM issued WHERE prune GROUP BY 1, 2) q
 JOIN sidetrend.trackers t ON t.id = q.tid
 WHERE h.tracker_id = q.tid AND h.series_key = q.key AND h.issued_for <= q.newest - t.history_buckets`
-}
-
-// recordHistorySQL is RecordHistory's statement: each issue's part of the
-// flat arrays is [off+1 : off+h], NaN for NULL.
-var recordHistorySQL = `
-WITH issued AS (
-    SELECT q.tid, q.key, q.issued_for,
-           array_replace(($6::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) AS yhat,
-           array_replace(($7::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) AS se,
-           nullif(q.t95, 'NaN') AS t95, true AS prune
-    FROM unnest($1::int[], $2::text[], $3::bigint[], $4::int[], $5::int[], $8::float8[])
-         AS q(tid, key, issued_for, off, h, t95)
-)` + historySQL()
-
-// RecordHistory appends served forecasts to sidetrend.forecast_issues (read
-// through the view sidetrend.forecast_history) in the caller's transaction
-// and deletes, for each series it was given, the rows issued
-// history_buckets or more buckets before its newest issue. The drain writes
-// history with the series rows instead (writeSeriesSQL), through the same
-// insert and prune; this is for forecasts served elsewhere.
-func RecordHistory(ctx context.Context, tx pgx.Tx, fcs []IssuedForecast) error {
-	if len(fcs) == 0 {
-		return nil
-	}
-	n := len(fcs)
-	tids, keys, issued := make([]int32, n), make([]string, n), make([]int64, n)
-	offs, hs, t95 := make([]int32, n), make([]int32, n), make([]float64, n)
-	// Never nil: a nil slice is sent as NULL, not as an empty array.
-	yhat, se := make([]float64, 0, len(fcs[0].Yhat)*n), make([]float64, 0, len(fcs[0].Yhat)*n)
-	for i, f := range fcs {
-		if len(f.SE) != len(f.Yhat) {
-			return fmt.Errorf("record history of %q: %d forecasts but %d standard errors", f.SeriesKey, len(f.Yhat), len(f.SE))
-		}
-		tids[i], keys[i], issued[i] = int32(f.TrackerID), f.SeriesKey, f.IssuedFor
-		offs[i], hs[i], t95[i] = int32(len(yhat)), int32(len(f.Yhat)), finiteOrNaN(f.T95)
-		yhat, se = appendFinite(yhat, f.Yhat), appendFinite(se, f.SE)
-	}
-	if _, err := tx.Exec(ctx, recordHistorySQL, tids, keys, issued, offs, hs, yhat, se, t95); err != nil {
-		return fmt.Errorf("record forecast history: %w", err)
-	}
-	return nil
-}

@@ -106,7 +106,7 @@ WITH q AS (
     RETURNING q.tid, q.key, q.folded AS issued_for, q.yhat, q.se, q.t95, q.issue, q.prune
 ), issued AS (
     SELECT * FROM written WHERE issue
-)` + historySQL()
+)` + historyTailSQL
 }()
 
 // deleteSeriesSQL drops the rows of series that have no point left.
