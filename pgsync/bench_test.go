@@ -427,37 +427,53 @@ var kioskCols = []string{"kiosk", "day", "takings"}
 // every batch computes and writes forecasts, as in steady operation.
 const kioskWarmDays = 14
 
-// kiosks is a database of n kiosks whose day 0 is origin.
+// kiosks is a database of n kiosks whose bucket 0 starts at origin, with
+// buckets of step: a day unless newKiosksEvery says otherwise.
 type kiosks struct {
 	pool   *pgxpool.Pool
 	dbURL  string
 	rng    *rand.Rand
 	n      int
 	origin time.Time
+	step   time.Duration
 }
 
-// day is day d's takings of every kiosk, in kiosk order, each at a random
-// time of the trading day; at, if not zero, is the time of every row.
-func (k *kiosks) day(d int, at time.Time) [][]any {
-	out := make([][]any, k.n)
-	start := k.origin.AddDate(0, 0, d)
-	for i := range out {
+// day is bucket d's takings of every kiosk, in kiosk order, each at a
+// random time of the trading day (of the bucket, if shorter than a day);
+// at, if not zero, is the time of every row.
+func (k *kiosks) day(d int, at time.Time) [][]any { return k.rows(d, 0, k.n, at) }
+
+// rows is day (bucket d) for kiosks lo up to hi only.
+func (k *kiosks) rows(d, lo, hi int, at time.Time) [][]any {
+	out := make([][]any, 0, hi-lo)
+	start := k.origin.Add(time.Duration(d) * k.step)
+	for i := lo; i < hi; i++ {
 		v := 300 + float64(i%50) + 0.2*float64(d) + 40*math.Sin(2*math.Pi*float64(d)/7) + 15*k.rng.NormFloat64()
 		ts := at
-		if ts.IsZero() {
+		switch {
+		case !ts.IsZero():
+		case k.step == 24*time.Hour:
 			ts = start.Add(time.Duration(8*3600+k.rng.IntN(12*3600)) * time.Second)
+		default:
+			ts = start.Add(time.Duration(k.rng.Int64N(int64(k.step))))
 		}
-		out[i] = []any{fmt.Sprintf("kiosk %05d", i), ts, cents(v)}
+		out = append(out, []any{fmt.Sprintf("kiosk %05d", i), ts, cents(v)})
 	}
 	return out
 }
 
 // newKiosks makes a database with n kiosks' warm-up history from origin on,
-// tracked and caught up: every series has a ready state.
+// tracked with daily buckets and caught up: every series has a ready state.
 func newKiosks(b *testing.B, admin string, n int, origin time.Time) *kiosks {
+	return newKiosksEvery(b, admin, n, origin, 24*time.Hour)
+}
+
+// newKiosksEvery is newKiosks with buckets of step (a whole number of
+// seconds).
+func newKiosksEvery(b *testing.B, admin string, n int, origin time.Time, step time.Duration) *kiosks {
 	b.Helper()
 	pool, dbURL := newBenchDB(b, admin)
-	k := &kiosks{pool: pool, dbURL: dbURL, rng: rand.New(rand.NewPCG(1, 1)), n: n, origin: origin}
+	k := &kiosks{pool: pool, dbURL: dbURL, rng: rand.New(rand.NewPCG(1, 1)), n: n, origin: origin, step: step}
 	ctx := context.Background()
 	benchExec(b, pool, `CREATE TABLE kiosk_takings (id bigserial PRIMARY KEY, kiosk text NOT NULL, day timestamptz NOT NULL, takings numeric NOT NULL)`)
 	var warm [][]any
@@ -467,7 +483,11 @@ func newKiosks(b *testing.B, admin string, n int, origin time.Time) *kiosks {
 	if _, err := pool.CopyFrom(ctx, pgx.Identifier{"kiosk_takings"}, kioskCols, pgx.CopyFromRows(warm)); err != nil {
 		b.Fatal(err)
 	}
-	benchExec(b, pool, `SELECT sidetrend.track('kiosk_takings', 'day', 'takings', '{kiosk}', period => 7, harmonics => 2, horizon => 14)`)
+	bucket := "1 day"
+	if step != 24*time.Hour {
+		bucket = fmt.Sprintf("%d seconds", int64(step/time.Second))
+	}
+	benchExec(b, pool, `SELECT sidetrend.track('kiosk_takings', 'day', 'takings', '{kiosk}', bucket => $1::interval, period => 7, harmonics => 2, horizon => 14)`, bucket)
 	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
 		b.Fatal(err)
 	}
@@ -681,6 +701,121 @@ func BenchmarkPipeline(b *testing.B) {
 			})
 		})
 	}
+}
+
+// --- Stream ------------------------------------------------------------
+
+// The live source of BenchmarkStream: streamRows rows a commit, one commit
+// every streamTick, is the brief's 20,000 rows/s; the minute buckets are
+// the shortest bucket a short-term forecast is commonly kept for (common
+// practice), so every kiosk closes a bucket once a minute.
+const (
+	streamSeries = 10_000
+	streamRows   = stmtRows
+	streamTick   = 50 * time.Millisecond
+	streamSample = 100 * time.Millisecond
+)
+
+// BenchmarkStream runs a live source at 20,000 rows/s over 10,000 kiosks
+// with minute buckets, in real time: a writer commits streamRows rows every
+// streamTick, stamped now, the kiosks in turn; an in-process Runner, woken
+// by NOTIFY, keeps up with it. Every minute each kiosk's first row of the
+// new minute closes its bucket, so one row in 120 is folded with its
+// bucket (10,000 folds a minute, in a burst), the rest add to open
+// buckets: what a sustained stream at this rate does. (mode=open and
+// mode=closed of BenchmarkPipeline are the two kinds of row alone, at the
+// highest rate the sidecar drains them.)
+//
+// One op is one commit. The sidecar keeps up if the change log stays
+// short and its oldest change stays young: a sampler reads both every
+// streamSample, and lag-p99-ms is the 99th percentile of the oldest
+// waiting change's age (from its capture to now; forecasts are at most
+// that stale). rows/s is the writer's achieved rate: below 20,000 if the
+// writer itself fell behind its ticks. Use -benchtime 2400x (two minutes,
+// two bucket boundaries at least).
+func BenchmarkStream(b *testing.B) {
+	admin := benchServer(b)
+	// Minute 0 of the warm-up history is kioskWarmDays minutes ago: the
+	// stream writes into the minute after it.
+	start := time.Now().UTC().Truncate(time.Minute)
+	k := newKiosksEvery(b, admin, streamSeries, start.Add(-kioskWarmDays*time.Minute), time.Minute)
+	ctx := context.Background()
+	var rebuilds atomic.Int64
+	counter := newDrainCounter()
+	startBenchRunner(b, k.dbURL, func(bi BatchInfo) {
+		rebuilds.Add(int64(bi.Rebuilds))
+		counter.onBatch(bi)
+	})
+	report := statementProfile(b, k.pool)
+
+	// The sampler: age of the oldest waiting change and the log's length.
+	var ages []float64
+	var longest int64
+	sampled := make(chan struct{})
+	stop := make(chan struct{})
+	go func() {
+		defer close(sampled)
+		t := time.NewTicker(streamSample)
+		defer t.Stop()
+		for {
+			select {
+			case <-stop:
+				return
+			case <-t.C:
+			}
+			// By the id index: a scan of the log would cost more the
+			// longer the log grows. n counts the ids from the head on.
+			var n int64
+			var age float64
+			if err := k.pool.QueryRow(ctx, `
+				SELECT coalesce((SELECT max(id) FROM sidetrend.changes) - h.id + 1, 0),
+				       coalesce(extract(epoch FROM clock_timestamp() - h.at), 0)::float8
+				FROM (SELECT NULL) x LEFT JOIN LATERAL (SELECT id, at FROM sidetrend.changes ORDER BY id LIMIT 1) h ON true`).Scan(&n, &age); err != nil {
+				b.Error(err)
+				return
+			}
+			ages = append(ages, age*1e3)
+			longest = max(longest, n)
+		}
+	}()
+
+	sql := valuesSQL("kiosk_takings", kioskCols, streamRows)
+	tick := time.NewTicker(streamTick)
+	defer tick.Stop()
+	commits := 0
+	b.ReportAllocs()
+	for b.Loop() {
+		<-tick.C
+		at := time.Now()
+		lo := (commits * streamRows) % streamSeries
+		rows := k.rows(int(at.Sub(k.origin)/k.step), lo, lo+streamRows, at)
+		if _, err := k.pool.Exec(ctx, sql, flatten(rows)...); err != nil {
+			b.Fatal(err)
+		}
+		commits++
+	}
+	tick.Stop()
+	elapsed := b.Elapsed()
+	counter.waitFor(b, int64(commits*streamRows))
+	close(stop)
+	<-sampled
+	report()
+
+	slices.Sort(ages)
+	if len(ages) > 0 {
+		b.ReportMetric(percentile(ages, 0.50), "lag-p50-ms")
+		b.ReportMetric(percentile(ages, 0.99), "lag-p99-ms")
+		b.ReportMetric(ages[len(ages)-1], "lag-max-ms")
+	}
+	b.ReportMetric(float64(longest), "log-max")
+	b.ReportMetric(float64(commits*streamRows)/elapsed.Seconds(), "rows/s")
+	var folds int64
+	if err := k.pool.QueryRow(ctx, `SELECT sum(points) - $1 FROM sidetrend.series`, int64(kioskWarmDays*streamSeries)).Scan(&folds); err != nil {
+		b.Fatal(err)
+	}
+	b.ReportMetric(float64(folds), "folds")
+	b.ReportMetric(float64(rebuilds.Load()), "rebuilds")
+	k.check(b, -1)
 }
 
 // --- Latency -----------------------------------------------------------

@@ -307,6 +307,73 @@ func TestOpenBucketWaitsForClock(t *testing.T) {
 	}
 }
 
+// TestLaggingSidecarWaitsForTheLog checks that a bucket whose end the wall
+// clock has passed is not folded while a change captured before that end
+// still waits in the log (Syncer.clock): neither by the drain that claims
+// the bucket's first change nor by the due sweep. Folding it would make
+// the waiting change a late row and its series a replay.
+func TestLaggingSidecarWaitsForTheLog(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	createSales(t, pool, "sales")
+	// Day 0 is today; day 1's rows are stamped ahead, so that day 1 ends
+	// after every capture time of this test, as a bucket a lagging sidecar
+	// is still reading does.
+	today := time.Now().UTC().Truncate(24 * time.Hour)
+	day := func(d int) time.Time { return today.AddDate(0, 0, d) }
+	for d := -2; d <= 0; d++ {
+		insertRows(t, pool, "sales", [][]any{{day(d).Add(12 * time.Hour), "a", 10.0 + float64(d)}})
+	}
+	s := NewSyncer(pool, nil)
+	s.now = func() time.Time { return day(1).Add(time.Hour) } // day 0 has ended
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	state := func() (points int64, due *time.Time) {
+		t.Helper()
+		if err := pool.QueryRow(ctx, `SELECT points, pending_due FROM sidetrend.series WHERE series_key = 'a'`).Scan(&points, &due); err != nil {
+			t.Fatal(err)
+		}
+		return points, due
+	}
+	if points, due := state(); points != 3 || due != nil {
+		t.Fatalf("after the history: points %d, pending_due %v; want 3 and NULL", points, due)
+	}
+
+	// Two statements of day 1, two changes; the wall clock is two days past
+	// day 1's end, and the sidecar reads one change a batch.
+	insertRows(t, pool, "sales", [][]any{{day(1).Add(12 * time.Hour), "a", 20.0}})
+	insertRows(t, pool, "sales", [][]any{{day(1).Add(13 * time.Hour), "a", 22.0}})
+	s.now = func() time.Time { return day(4) }
+	s.BatchSize, s.Workers = 1, 1
+	before := s.Stats().Rebuilds
+	if n, err := s.drainBatch(ctx); err != nil || n != 1 {
+		t.Fatalf("first batch: %d changes, %v; want 1", n, err)
+	}
+	if points, due := state(); points != 3 || due == nil || !due.Equal(day(2)) {
+		t.Fatalf("with a change of day 1 still in the log: points %d, pending_due %v; want 3 and %v", points, due, day(2))
+	}
+	if n, err := s.dueBatch(ctx); err != nil || n != 0 {
+		t.Fatalf("due sweep with a change of day 1 still in the log: %d series, %v; want none", n, err)
+	}
+
+	// Once the log is read, the clock closes day 1 with both rows.
+	if err := s.CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if points, due := state(); points != 4 || due != nil {
+		t.Fatalf("after the log was read: points %d, pending_due %v; want 4 and NULL", points, due)
+	}
+	var sum float64
+	if err := pool.QueryRow(ctx, `SELECT sum FROM sidetrend.points WHERE series_key = 'a' AND bucket = (SELECT folded_through FROM sidetrend.series WHERE series_key = 'a')`).Scan(&sum); err != nil {
+		t.Fatal(err)
+	}
+	if replays := s.Stats().Rebuilds - before; sum != 42 || replays != 0 {
+		t.Fatalf("day 1 folded with sum %v after %d replays; want 42 and none", sum, replays)
+	}
+}
+
 // TestRestartLosesNothing stops the sidecar between batches and checks that
 // what was written while it was down is taken in on restart.
 func TestRestartLosesNothing(t *testing.T) {
