@@ -62,7 +62,14 @@ WITH claimed AS (
            min(min) FILTER (WHERE NOT retract) AS min,
            max(max) FILTER (WHERE NOT retract) AS max,
            max(last_t) FILTER (WHERE NOT retract) AS last_t,
-           (array_agg(last_v ORDER BY last_t DESC, last_v DESC) FILTER (WHERE NOT retract AND last_t IS NOT NULL))[1] AS last_v,
+           -- The value at the newest last_t, the greatest on a tie: the
+           -- greatest float8 array [whole seconds, microseconds, value]
+           -- (arrays compare element by element, and both parts of the time
+           -- are exact in float8). An ordered array_agg sorted each group on
+           -- its own and kept the planner from hashing the groups: a tenth
+           -- of an open-bucket claim's time, measured.
+           (max(ARRAY[floor(extract(epoch FROM last_t))::float8, extract(microseconds FROM last_t)::float8, last_v])
+               FILTER (WHERE NOT retract AND last_t IS NOT NULL))[3] AS last_v,
            bool_or(retract) AS retract
     FROM claimed GROUP BY 1, 2, 3
 ), up AS (
