@@ -25,7 +25,9 @@ func TestBadInput(t *testing.T) {
 	pool, _ := newDB(t)
 	ctx := context.Background()
 	exec(t, pool, `CREATE TABLE obs (id bigserial PRIMARY KEY, at timestamptz, k text, v float8)`)
-	exec(t, pool, `SELECT sidetrend.track('obs', 'at', 'v', '{k}', lambda => 0.9, horizon => 5, name => 'obs')`)
+	// The span covers the whole calendar: the years 1 and 9999 below are
+	// folded in (TestWriterCannotStopTheLog checks the default span).
+	exec(t, pool, `SELECT sidetrend.track('obs', 'at', 'v', '{k}', lambda => 0.9, horizon => 5, name => 'obs', span => '10000 years')`)
 	r := obsTracker("obs", "sum", "zero")
 	s := NewSyncer(pool, nil)
 	day := func(d int) time.Time { return time.Date(2026, 5, 1+d, 9, 0, 0, 0, time.UTC) }
@@ -48,6 +50,7 @@ func TestBadInput(t *testing.T) {
 		{`INSERT INTO obs (at, k, v) VALUES (NULL, 'good', 1)`, "time is NULL"},
 		{`INSERT INTO obs (at, k, v) VALUES ('infinity', 'good', 1)`, "time is infinite"},
 		{`INSERT INTO obs (at, k, v) VALUES ('20000-01-01 00:00Z', 'good', 1)`, "time is outside the years 1 to 9999"},
+		{`INSERT INTO obs (at, k, v) VALUES ('2026-05-25 10:00Z', repeat('k', 1001), 1)`, "series key is longer than 1000 bytes"},
 		{`INSERT INTO obs (at, k, v) VALUES ('2026-05-25 10:00Z', 'good', 1e300)`, "value is beyond +-1e150"},
 	}
 	for _, b := range bad {

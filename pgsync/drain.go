@@ -48,14 +48,27 @@ const DefaultBatchSize = 5000
 // that joined the whole series table (together a fifth of a batch's time
 // in Postgres, measured). n is written into the statement as a literal:
 // with LIMIT $1 a generic plan may scan the whole change log.
-func claimSQL(n int) string {
+//
+// tracker, when not 0, claims only that tracker's changes (isolate uses it
+// to find which tracker's changes fail).
+func claimSQL(n, tracker int) string {
+	only := ""
+	if tracker != 0 {
+		only = ` AND tracker_id = ` + strconv.Itoa(tracker)
+	}
 	return `
 WITH claimed AS (
     DELETE FROM sidetrend.changes c
     -- ctid = ANY(ARRAY(...)) plans as a TID scan (with enable_seqscan off,
     -- see Syncer.claim); the IN form was cached as a nested-loop semi join
     -- that re-ran the LIMIT subquery per row.
-    WHERE c.ctid = ANY (ARRAY(SELECT ctid FROM sidetrend.changes ORDER BY id LIMIT ` + strconv.Itoa(n) + ` FOR UPDATE SKIP LOCKED))
+    -- A tracker being backfilled holds advisory lock (21332, its id)
+    -- exclusively (install_capture's backfill function): its changes are
+    -- skipped until the backfill commits, and a claim that holds some is
+    -- waited for by the backfill.
+    WHERE c.ctid = ANY (ARRAY(SELECT ctid FROM sidetrend.changes
+                              WHERE pg_try_advisory_xact_lock_shared(21332, tracker_id)` + only + `
+                              ORDER BY id LIMIT ` + strconv.Itoa(n) + ` FOR UPDATE SKIP LOCKED))
     RETURNING c.tracker_id, c.series_key, c.bucket, c.n, c.sum, c.min, c.max, c.last_t, c.last_v, c.retract
 ), agg AS (
     SELECT tracker_id, series_key, bucket, sum(n) AS n, sum(sum) AS sum,
@@ -156,7 +169,8 @@ CROSS JOIN LATERAL (
 // clock (Syncer.clock) has passed, or a rebuild asked for.
 const dueSQL = `
 SELECT s.tracker_id, s.series_key FROM sidetrend.series s
-WHERE s.rebuild OR s.pending_due <= $1
+WHERE (s.rebuild OR s.pending_due <= $1) AND ($2 = 0 OR s.tracker_id = $2)
+  AND EXISTS (SELECT 1 FROM sidetrend.trackers t WHERE t.id = s.tracker_id AND t.status = 'active')
 ORDER BY 1, 2 LIMIT 1000`
 
 // helpersFrom is the smallest first batch for which drainLog starts more
@@ -202,6 +216,16 @@ type Syncer struct {
 	// and trackers created with lambda => NULL get the result applied. The
 	// long-running Runner tunes in its own goroutine instead.
 	Tune bool
+	// LockTimeout bounds how long a backfill (or the capture reinstall
+	// before it) waits for a lock on a source table; DefaultLockTimeout
+	// when zero. The backfill itself takes no lock that blocks writers.
+	LockTimeout time.Duration
+
+	// only, when not 0, limits claims and due batches to one tracker
+	// (isolate).
+	only int
+	// lastCheck and lastPrune: when checkTrackers and pruneRejects last ran.
+	lastCheck, lastPrune time.Time
 }
 
 // BatchInfo describes one committed batch.
@@ -265,7 +289,10 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 	if err := s.refreshTrackers(ctx); err != nil {
 		return err
 	}
-	if err := s.markBroken(ctx); err != nil {
+	if err := s.checkTrackers(ctx); err != nil {
+		return err
+	}
+	if err := s.pruneRejects(ctx); err != nil {
 		return err
 	}
 	if err := s.backfill(ctx); err != nil {
@@ -326,7 +353,7 @@ func (s *Syncer) CatchUp(ctx context.Context) error {
 // the first and waited for by the second, which then reads the state the
 // first committed.
 func (s *Syncer) drainLog(ctx context.Context) error {
-	n, err := s.retry(ctx, s.drainBatch)
+	n, err := s.guarded(ctx, batchDrain)
 	if err != nil || n == 0 {
 		return err
 	}
@@ -336,7 +363,7 @@ func (s *Syncer) drainLog(ctx context.Context) error {
 	g, gctx := errgroup.WithContext(ctx)
 	helpers := make([]*Syncer, s.Workers-1)
 	for i := range helpers {
-		h := &Syncer{pool: s.pool, log: s.log, now: s.now, trackers: maps.Clone(s.trackers), OnBatch: s.OnBatch, BatchSize: s.BatchSize}
+		h := &Syncer{pool: s.pool, log: s.log, now: s.now, trackers: maps.Clone(s.trackers), OnBatch: s.OnBatch, BatchSize: s.BatchSize, only: s.only}
 		helpers[i] = h
 		g.Go(func() error { return h.drainSerial(gctx) })
 	}
@@ -383,7 +410,7 @@ func (s *Syncer) drainLocked(ctx context.Context, mark int64) error {
 // drainSerial drains batches until one finds the change log empty.
 func (s *Syncer) drainSerial(ctx context.Context) error {
 	for {
-		n, err := s.retry(ctx, s.drainBatch)
+		n, err := s.guarded(ctx, batchDrain)
 		if err != nil || n == 0 {
 			return err
 		}
@@ -392,7 +419,7 @@ func (s *Syncer) drainSerial(ctx context.Context) error {
 
 func (s *Syncer) drainDue(ctx context.Context) error {
 	for {
-		n, err := s.retry(ctx, s.dueBatch)
+		n, err := s.guarded(ctx, batchDue)
 		if err != nil {
 			return err
 		}
@@ -411,7 +438,10 @@ func (s *Syncer) refreshTrackers(ctx context.Context) error {
 	return nil
 }
 
-// backfill takes in the existing rows of every tracker not yet backfilled.
+// backfill takes in the existing rows of every active tracker not yet
+// backfilled. A tracker whose backfill fails for a reason of its own (its
+// table, its columns, its rights) is set aside with the error (mark_broken)
+// and the others go on.
 func (s *Syncer) backfill(ctx context.Context) error {
 	ids := make([]int, 0)
 	for id, t := range s.trackers {
@@ -427,32 +457,76 @@ func (s *Syncer) backfill(ctx context.Context) error {
 	for _, id := range ids {
 		t := s.trackers[id]
 		start := time.Now()
-		fn := pgx.Identifier{"sidetrend", fmt.Sprintf("_backfill_%d", id)}.Sanitize()
-		tx, err := s.pool.Begin(ctx)
-		if err != nil {
-			return fmt.Errorf("backfill tracker %q: %w", t.Name, err)
-		}
-		// Re-check under the transaction: another sidecar may have done it.
-		var done bool
-		err = tx.QueryRow(ctx, `SELECT backfilled FROM sidetrend.trackers WHERE id = $1 FOR UPDATE`, id).Scan(&done)
-		if err == nil && !done {
-			_, err = tx.Exec(ctx, `SELECT `+fn+`()`)
-		}
-		if err == nil {
-			err = tx.Commit(ctx)
+		done, err := s.backfillOne(ctx, id)
+		if err != nil && trackerFault(err) {
+			if err := s.setAside(ctx, id, fmt.Errorf("backfill: %w", err)); err != nil {
+				return err
+			}
+			continue
 		}
 		if err != nil {
-			tx.Rollback(context.WithoutCancel(ctx))
 			return fmt.Errorf("backfill tracker %q: %w", t.Name, err)
 		}
 		t.Backfilled = true
-		s.stats.Backfills++
 		if s.Progress != nil {
 			s.Progress.Add(1)
 		}
-		s.log.Info("backfill done", "tracker", t.Name, "took_ms", time.Since(start).Milliseconds())
+		if done {
+			s.stats.Backfills++
+			s.log.Info("backfill done", "tracker", t.Name, "took_ms", time.Since(start).Milliseconds())
+		}
 	}
 	return nil
+}
+
+// backfillSignatureSQL tells whether a tracker's capture code was made for
+// other column types than the table has now (the owner altered a column to
+// another type that sidetrend reads: the capture stopped and asked for this
+// backfill; check_trackers has already paused trackers with a type it does
+// not read).
+const backfillSignatureSQL = `
+SELECT t.backfilled, t.status = 'active',
+       sidetrend.column_signature(t.source, ARRAY[t.time_col, t.value_col] || t.key_cols) IS DISTINCT FROM t.col_types
+FROM sidetrend.trackers t WHERE t.id = $1 FOR UPDATE`
+
+// backfillOne backfills one tracker in one transaction, reinstalling its
+// capture first when its columns changed type. It reports false when
+// another sidecar had done it.
+func (s *Syncer) backfillOne(ctx context.Context, id int) (bool, error) {
+	tx, err := s.pool.Begin(ctx)
+	if err != nil {
+		return false, err
+	}
+	defer tx.Rollback(context.WithoutCancel(ctx))
+	if _, err := tx.Exec(ctx, `SELECT set_config('lock_timeout', $1, true)`, s.lockTimeout()); err != nil {
+		return false, err
+	}
+	// Re-check under the lock: another sidecar may have done it.
+	var done, active, stale bool
+	if err := tx.QueryRow(ctx, backfillSignatureSQL, id).Scan(&done, &active, &stale); err != nil {
+		return false, err
+	}
+	if done || !active {
+		return false, tx.Commit(ctx)
+	}
+	if stale {
+		if _, err := tx.Exec(ctx, `SELECT sidetrend.install_capture($1)`, id); err != nil {
+			return false, err
+		}
+	}
+	fn := pgx.Identifier{"sidetrend", fmt.Sprintf("_backfill_%d", id)}.Sanitize()
+	if _, err := tx.Exec(ctx, `SELECT `+fn+`()`); err != nil {
+		return false, err
+	}
+	return true, tx.Commit(ctx)
+}
+
+func (s *Syncer) lockTimeout() string {
+	d := s.LockTimeout
+	if d <= 0 {
+		d = DefaultLockTimeout
+	}
+	return strconv.FormatInt(d.Milliseconds(), 10) + "ms"
 }
 
 // retry runs one batch and runs it again after a deadlock or serialization
@@ -539,7 +613,7 @@ type claimResult struct {
 func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (*claimResult, error) {
 	b := &pgx.Batch{}
 	b.Queue(`SET LOCAL enable_seqscan = off`)
-	b.Queue(claimSQL(max(1, s.BatchSize)))
+	b.Queue(claimSQL(max(1, s.BatchSize), s.only))
 	b.Queue(`SET LOCAL enable_seqscan = on`)
 	b.Queue(logHeadSQL)
 	br := tx.SendBatch(ctx, b)
@@ -650,23 +724,6 @@ func (s *Syncer) recomputeDirty(ctx context.Context, tx pgx.Tx, touched map[seri
 	return nil
 }
 
-// markBroken flags trackers whose source table is gone (dropped): the
-// sidecar keeps serving their last forecasts and every other tracker.
-func (s *Syncer) markBroken(ctx context.Context) error {
-	tag, err := s.pool.Exec(ctx, `
-		UPDATE sidetrend.trackers t SET status = 'broken',
-		       last_error = format('source table %s was dropped; untrack it or track the new table', t.source_name)
-		WHERE t.status = 'active' AND NOT EXISTS (SELECT 1 FROM pg_catalog.pg_class c WHERE c.oid = t.source)`)
-	if err != nil {
-		return fmt.Errorf("check source tables: %w", err)
-	}
-	if tag.RowsAffected() > 0 {
-		s.log.Warn("trackers marked broken: source table dropped", "count", tag.RowsAffected())
-		return s.refreshTrackers(ctx)
-	}
-	return nil
-}
-
 // resync rereads single series from their source tables, as queued by
 // sidetrend.rebuild(name, series_key).
 func (s *Syncer) resync(ctx context.Context) error {
@@ -687,6 +744,9 @@ func (s *Syncer) resync(ctx context.Context) error {
 		}
 		t := s.trackers[int(tid)]
 		if err == nil && t != nil && t.Status == "active" {
+			_, err = tx.Exec(ctx, `SELECT set_config('lock_timeout', $1, true)`, s.lockTimeout())
+		}
+		if err == nil && t != nil && t.Status == "active" {
 			fn := pgx.Identifier{"sidetrend", fmt.Sprintf("_backfill_%d", tid)}.Sanitize()
 			_, err = tx.Exec(ctx, `SELECT `+fn+`($1)`, key)
 		}
@@ -695,6 +755,13 @@ func (s *Syncer) resync(ctx context.Context) error {
 		}
 		if err != nil {
 			tx.Rollback(context.WithoutCancel(ctx))
+			if tid != 0 && trackerFault(err) {
+				// Its resync requests go with it (stop_capture).
+				if err := s.setAside(ctx, int(tid), fmt.Errorf("rebuild series %q from its source: %w", key, err)); err != nil {
+					return err
+				}
+				continue
+			}
 			return fmt.Errorf("rebuild series %q from its source: %w", key, err)
 		}
 		s.log.Info("series reread from source", "tracker_id", tid, "series_key", key)
@@ -715,7 +782,7 @@ func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("read the change log's head: %w", err)
 	}
 	now := s.clock(head)
-	rows, err := tx.Query(ctx, dueSQL, now)
+	rows, err := tx.Query(ctx, dueSQL, now, int32(s.only))
 	if err != nil {
 		return 0, fmt.Errorf("find due series: %w", err)
 	}
@@ -911,7 +978,7 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		keep, err := s.fold(w, now, out)
 		if err != nil {
-			return err
+			return &foldError{id: id, err: err}
 		}
 		if !keep {
 			goneTids, goneKeys = append(goneTids, int32(id.tracker)), append(goneKeys, id.key)

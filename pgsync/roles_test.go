@@ -82,7 +82,7 @@ func ensureSharedRoles(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer admin.Close(ctx)
-	for _, r := range []string{"sidetrend_reader", "sidetrend_writer"} {
+	for _, r := range []string{"sidetrend_reader", "sidetrend_writer", "sidetrend_admin"} {
 		// r is one of two fixed names: safe as a literal and an identifier.
 		_, err := admin.Exec(ctx, fmt.Sprintf(`DO $$ BEGIN
 			IF NOT EXISTS (SELECT 1 FROM pg_roles WHERE rolname = '%[1]s') THEN CREATE ROLE %[1]s NOLOGIN; END IF;
@@ -134,6 +134,8 @@ func TestRolesLeastPrivilege(t *testing.T) {
 		`GRANT USAGE ON SEQUENCE public.sales_id_seq TO ` + id("clerk"),
 		`GRANT SELECT ON public.sales TO ` + id("planner"),
 		`GRANT sidetrend_reader TO ` + id("analyst"),
+		// A reader sees the trackers of tables it may read (and no others).
+		`GRANT SELECT ON public.sales TO ` + id("analyst"),
 		`GRANT sidetrend_writer TO ` + id("planner"),
 	} {
 		if _, err := admin.Exec(ctx, sql); err != nil {

@@ -57,6 +57,8 @@ type RunnerConfig struct {
 	// Workers and BatchSize are handed to the Syncer (0: its defaults).
 	Workers   int
 	BatchSize int
+	// LockTimeout is handed to the Syncer (0: DefaultLockTimeout).
+	LockTimeout time.Duration
 	// OnBatch and Progress are handed to the Syncer (metrics, progress bars).
 	OnBatch  func(BatchInfo)
 	Progress Progress
@@ -154,6 +156,7 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 	if r.cfg.Workers > 0 {
 		syncer.Workers = r.cfg.Workers
 	}
+	syncer.LockTimeout = r.cfg.LockTimeout
 	if r.cfg.BatchSize > 0 {
 		syncer.BatchSize = r.cfg.BatchSize
 	}

@@ -5,7 +5,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"math"
-	"time"
 
 	"github.com/jackc/pgx/v5"
 
@@ -138,41 +137,22 @@ FROM unnest($1::int[], $2::text[], $3::bigint[], $4::text[], $5::float8[], $6::f
 JOIN sidetrend.trackers t ON t.id = q.tid
 ORDER BY q.tid, q.key, q.bucket, q.kind
 ON CONFLICT (tracker_id, series_key, bucket, kind) DO NOTHING
-RETURNING id, tracker_id, tracker, series_key, bucket, period_start, kind, actual, yhat, lo95, hi95, z, slope_t, direction, detected_at`
+RETURNING id, tracker_id, kind`
 
-// surpriseEvent is the JSON form of a surprise in a notification.
+// surpriseEvent is the JSON form of a surprise in a notification: ids
+// only. Any role may LISTEN on any channel, so a notification carries no
+// value, key or name; a listener reads the rest from sidetrend.surprises by
+// id, which shows it only the trackers whose source it may read.
 type surpriseEvent struct {
-	ID          int64     `json:"id"`
-	TrackerID   int32     `json:"tracker_id"`
-	Tracker     string    `json:"tracker"`
-	SeriesKey   string    `json:"series_key"`
-	Bucket      int64     `json:"bucket"`
-	PeriodStart time.Time `json:"period_start"`
-	Kind        string    `json:"kind"`
-	Actual      *float64  `json:"actual"`
-	Yhat        *float64  `json:"yhat"`
-	Lo95        *float64  `json:"lo95"`
-	Hi95        *float64  `json:"hi95"`
-	Z           *float64  `json:"z"`
-	SlopeT      *float64  `json:"slope_t,omitempty"`
-	Direction   *string   `json:"direction,omitempty"`
-	DetectedAt  time.Time `json:"detected_at"`
-}
-
-// shortEvent stands in for an event whose JSON alone would not fit in one
-// notification (a very long series key): the listener reads the rest from
-// sidetrend.surprises by id.
-type shortEvent struct {
 	ID        int64  `json:"id"`
 	TrackerID int32  `json:"tracker_id"`
 	Kind      string `json:"kind"`
-	Truncated bool   `json:"truncated"`
 }
 
 // RecordSurprises stores events in sidetrend.surprises in the caller's
 // transaction and announces the newly stored ones on SurpriseChannel: JSON
-// arrays of events, as many per notification as fit in Postgres' payload
-// limit (under 8000 bytes). The notifications are delivered when the
+// arrays of {"id", "tracker_id", "kind"}, as many per notification as fit
+// in Postgres' payload limit (under 8000 bytes). The notifications are delivered when the
 // transaction commits, and not at all when it rolls back.
 func RecordSurprises(ctx context.Context, tx pgx.Tx, evs []Surprise) error {
 	if len(evs) == 0 {
@@ -201,8 +181,7 @@ func RecordSurprises(ctx context.Context, tx pgx.Tx, evs []Surprise) error {
 	var payloads [][]byte
 	for rows.Next() {
 		var e surpriseEvent
-		if err := rows.Scan(&e.ID, &e.TrackerID, &e.Tracker, &e.SeriesKey, &e.Bucket, &e.PeriodStart, &e.Kind,
-			&e.Actual, &e.Yhat, &e.Lo95, &e.Hi95, &e.Z, &e.SlopeT, &e.Direction, &e.DetectedAt); err != nil {
+		if err := rows.Scan(&e.ID, &e.TrackerID, &e.Kind); err != nil {
 			rows.Close()
 			return fmt.Errorf("record surprises: %w", err)
 		}
@@ -210,9 +189,6 @@ func RecordSurprises(ctx context.Context, tx pgx.Tx, evs []Surprise) error {
 		if err != nil {
 			rows.Close()
 			return fmt.Errorf("record surprises: %w", err)
-		}
-		if len(b)+2 > maxNotifyPayload {
-			b, _ = json.Marshal(shortEvent{ID: e.ID, TrackerID: e.TrackerID, Kind: e.Kind, Truncated: true})
 		}
 		payloads = append(payloads, b)
 	}

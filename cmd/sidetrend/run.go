@@ -24,6 +24,7 @@ func runCommand() *cli.Command {
 			&cli.DurationFlag{Name: "poll", Value: 5 * time.Second, Usage: "fallback poll interval when no NOTIFY arrives", EnvVars: []string{"SIDETREND_POLL"}},
 			&cli.IntFlag{Name: "workers", Value: pgsync.DefaultWorkers, Usage: "transactions that drain changes at once when more than a handful wait", EnvVars: []string{"SIDETREND_WORKERS"}},
 			&cli.IntFlag{Name: "batch-size", Value: pgsync.DefaultBatchSize, Usage: "change rows one drain transaction claims at most", EnvVars: []string{"SIDETREND_BATCH_SIZE"}},
+			&cli.DurationFlag{Name: "lock-timeout", Value: pgsync.DefaultLockTimeout, Usage: "longest wait for a lock on a tracked table (backfills; the table's writers are never blocked longer)", EnvVars: []string{"SIDETREND_LOCK_TIMEOUT"}},
 			&cli.BoolFlag{Name: "migrate", Value: true, Usage: "apply pending migrations on start", EnvVars: []string{"SIDETREND_MIGRATE"}},
 			&cli.StringFlag{Name: "http", Usage: "serve /metrics (Prometheus) and /healthz on this address, e.g. 127.0.0.1:9188; off when empty", EnvVars: []string{"SIDETREND_HTTP"}},
 			&cli.StringFlag{Name: "data-dir", Value: "./.sidetrend/pg", Usage: "data directory of the private Postgres used when no database is configured", EnvVars: []string{"SIDETREND_DATA_DIR"}},
@@ -70,6 +71,7 @@ func runCommand() *cli.Command {
 				defer pool.Close()
 				s := pgsync.NewSyncer(pool, log)
 				s.Tune, s.DrainAll, s.Workers, s.BatchSize = true, true, workers, batch
+				s.LockTimeout = c.Duration("lock-timeout")
 				s.Progress = progress
 				if err := s.CatchUp(c.Context); err != nil {
 					return err
@@ -82,7 +84,7 @@ func runCommand() *cli.Command {
 			if poll <= 0 {
 				return fmt.Errorf("--poll %s is not a positive duration: use e.g. 5s", poll)
 			}
-			cfg := pgsync.RunnerConfig{Poll: poll, Progress: progress, Workers: workers, BatchSize: batch}
+			cfg := pgsync.RunnerConfig{Poll: poll, Progress: progress, Workers: workers, BatchSize: batch, LockTimeout: c.Duration("lock-timeout")}
 			if addr := c.String("http"); addr != "" {
 				pool, err := pgsync.Connect(c.Context, db)
 				if err != nil {
