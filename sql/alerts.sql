@@ -15,13 +15,13 @@
 -- the model's assumptions hold), so with many series some outside95 events
 -- every day are expected: rank by |z| and look at the largest.
 --
--- Every surprise is also announced, as a JSON array, on the channel
--- sidetrend_surprise when the sidecar's transaction commits:
+-- Every surprise is also announced when the sidecar's transaction commits,
+-- on the channel sidetrend_surprise, as a JSON array of ids:
 --     LISTEN sidetrend_surprise;
--- Payloads stay under Postgres' 8000-byte limit: events are split over
--- several notifications, and an event too long to fit alone (a very long
--- series key) is sent as {"id": ..., "tracker_id": ..., "kind": ...,
--- "truncated": true}; read the rest from sidetrend.surprises by id.
+--     -- payload: [{"id": 812, "tracker_id": 3, "kind": "outside95"}, ...]
+-- Any role may LISTEN on any channel, so the payload carries no value, key
+-- or name: read the rest from sidetrend.surprises by id, which shows each
+-- role only the trackers whose source table it may read.
 
 -- recipe: surprised_today
 -- Which series surprised us today (detected since local midnight)?

@@ -1,10 +1,12 @@
 package main
 
 import (
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
 	"regexp"
+	"slices"
 	"strings"
 	"testing"
 
@@ -28,6 +30,7 @@ type composeFile struct {
 		Build       any               `yaml:"build"`
 		Command     []string          `yaml:"command"`
 		Environment map[string]string `yaml:"environment"`
+		Volumes     []string          `yaml:"volumes"`
 		Profiles    []string          `yaml:"profiles"`
 		Healthcheck *struct {
 			Test []string `yaml:"test"`
@@ -74,6 +77,22 @@ func TestComposeFile(t *testing.T) {
 	}
 	if !strings.HasPrefix(sc.Environment["DATABASE_URL"], "postgres://") || !strings.Contains(sc.Environment["DATABASE_URL"], "@postgres:5432/") {
 		t.Errorf("sidecar DATABASE_URL %q does not point at the postgres service", sc.Environment["DATABASE_URL"])
+	}
+	// The sidecar is no superuser: it connects as a role of its own that
+	// the init script creates without SUPERUSER (README, Security).
+	super := pg.Environment["POSTGRES_USER"]
+	for _, name := range []string{"sidecar", "demo"} {
+		s := cf.Services[name]
+		dbURL := s.Environment["DATABASE_URL"] + s.Environment["SIDETREND_DEMO_DB"]
+		if u, err := url.Parse(dbURL); err != nil || u.User.Username() == "" || u.User.Username() == super {
+			t.Errorf("%s connects as %q (err %v), want a role of its own, not the superuser %q", name, dbURL, err, super)
+		}
+	}
+	if !slices.Contains(pg.Volumes, "./docker/initdb.sql:/docker-entrypoint-initdb.d/10-sidetrend.sql:ro") {
+		t.Errorf("postgres volumes %v do not mount docker/initdb.sql", pg.Volumes)
+	}
+	if init := string(repoFile(t, "docker/initdb.sql")); !regexp.MustCompile(`CREATE ROLE sidetrend LOGIN [^;]*NOSUPERUSER`).MatchString(init) {
+		t.Errorf("docker/initdb.sql does not create role sidetrend without SUPERUSER:\n%s", init)
 	}
 	if sc.Environment["SIDETREND_MIGRATE"] != "true" {
 		t.Errorf("sidecar SIDETREND_MIGRATE %q, want true (migrations on start)", sc.Environment["SIDETREND_MIGRATE"])
