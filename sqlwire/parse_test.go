@@ -143,7 +143,7 @@ func compileDecl(t *testing.T, sql string, params ...paramVal) *plan {
 	default:
 		t.Fatalf("%s: parsed as %T", sql, st)
 	}
-	p, err := buildPlan(q, params, time.UTC)
+	p, err := buildPlan(q, params, time.UTC, nil)
 	if err != nil {
 		t.Fatalf("%s: %v", sql, err)
 	}
@@ -302,7 +302,7 @@ func TestCompileRefusals(t *testing.T) {
 	for _, c := range cases {
 		st, err := parseStatement(c.sql)
 		if err == nil {
-			_, err = buildPlan(st.(*selectStmt), nil, time.UTC)
+			_, err = buildPlan(st.(*selectStmt), nil, time.UTC, nil)
 		}
 		if err == nil {
 			t.Errorf("%s: compiled, want error %s", c.sql, c.code)
@@ -405,11 +405,11 @@ func evalConst(sql string) (string, error) {
 	if err != nil {
 		return "", err
 	}
-	p, err := buildPlan(st.(*selectStmt), nil, time.UTC)
+	p, err := buildPlan(st.(*selectStmt), nil, time.UTC, nil)
 	if err != nil {
 		return "", err
 	}
-	it, err := p.open(context.Background(), nil)
+	it, err := p.open(context.Background(), nil, nil)
 	if err != nil {
 		return "", err
 	}
