@@ -166,6 +166,14 @@ func formatCount(n int64) string {
 	return string(out)
 }
 
+// plural is "1 lambda", "3 lambdas".
+func plural(n int, word string) string {
+	if n == 1 {
+		return "1 " + word
+	}
+	return strconv.Itoa(n) + " " + word + "s"
+}
+
 // valueBytes is what one held value costs, besides the bytes of its text.
 const valueBytes = int64(unsafe.Sizeof(value{}))
 

@@ -314,7 +314,7 @@ func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
 		nl = len(ls)
 	}
 	if err := req.budget.expect(int64(len(infos))*int64(nl)*int64(len(hs)),
-		fmt.Sprintf("%d series x %d lambdas x %d horizons", len(infos), nl, len(hs))); err != nil {
+		fmt.Sprintf("%d series x %s x %s", len(infos), plural(nl, "lambda"), plural(len(hs), "horizon"))); err != nil {
 		return nil, err
 	}
 	it := &forecastIter{req: req, infos: infos, horizons: hs, maxH: hs[len(hs)-1],
@@ -462,7 +462,7 @@ func scanBacktest(ctx context.Context, req *scanRequest) (rowIter, error) {
 		return nil, err
 	}
 	if err := req.budget.expect(int64(len(infos))*int64(len(ls)),
-		fmt.Sprintf("%d series x %d lambdas", len(infos), len(ls))); err != nil {
+		fmt.Sprintf("%d series x %s", len(infos), plural(len(ls), "lambda"))); err != nil {
 		return nil, err
 	}
 	return &backtestIter{req: req, infos: infos, lambdas: ls, row: make([]value, 8)}, nil
