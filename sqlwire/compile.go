@@ -570,7 +570,9 @@ func (c *compiler) compileArrayOp(x *arrayOpExpr) (node, error) {
 		return nil, errorf(codeUndefinedFunction, "operator does not exist: %s %s %s[]", l.typ(), x.op, r.typ()).
 			withHint("compare with an array of the column's type")
 	}
-	return &anyNode{op: x.op, any: x.any, l: l, r: r, kind: kind}, nil
+	n := &anyNode{op: x.op, any: x.any, l: l, r: r, kind: kind}
+	n.index()
+	return n, nil
 }
 
 // isArrayNode reports whether n yields an array.
