@@ -28,6 +28,7 @@ type compiler struct {
 	rels   []relInfo
 	params []paramVal
 	loc    *time.Location
+	lim    *Limits // nil: no bound on IN lists
 
 	// Grouped queries: the GROUP BY expressions (canonical text and
 	// compiled node) and the aggregates found so far.
@@ -525,6 +526,9 @@ func (c *compiler) compileArrayOp(x *arrayOpExpr) (node, error) {
 	}
 	var r node
 	if arr, ok := x.r.(*arrayExpr); ok {
+		if err := c.lim.checkInList(len(arr.elems)); err != nil {
+			return nil, err
+		}
 		hint := l.typ()
 		r, err = c.compileArray(arr, hint)
 	} else {
@@ -555,12 +559,20 @@ func (c *compiler) compileArrayOp(x *arrayOpExpr) (node, error) {
 	if l, err = c.coerceUnknown(l, r.typ()); err != nil {
 		return nil, err
 	}
+	if v, ok := isConstNode(r); ok {
+		// An array literal or parameter: '{...}'::float8[], $1.
+		if err := c.lim.checkInList(len(v.arr)); err != nil {
+			return nil, err
+		}
+	}
 	kind, ok := compareKind(l.typ(), r.typ())
 	if !ok {
 		return nil, errorf(codeUndefinedFunction, "operator does not exist: %s %s %s[]", l.typ(), x.op, r.typ()).
 			withHint("compare with an array of the column's type")
 	}
-	return &anyNode{op: x.op, any: x.any, l: l, r: r, kind: kind}, nil
+	n := &anyNode{op: x.op, any: x.any, l: l, r: r, kind: kind}
+	n.index()
+	return n, nil
 }
 
 // isArrayNode reports whether n yields an array.

@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"math"
 	"math/big"
+	"sort"
 	"strconv"
 	"strings"
 	"time"
@@ -442,6 +443,30 @@ type anyNode struct {
 	any  bool
 	l, r node
 	kind cmpKind
+
+	// For = ANY and <> ALL of a constant array (IN and NOT IN lists): its
+	// non-NULL elements sorted, so that each row costs a binary search
+	// instead of a pass over the list.
+	sorted  []value
+	hasNull bool
+}
+
+// index sorts a constant array of = ANY or <> ALL; compareValues is a
+// total order for every kind, so equality is found by binary search.
+func (n *anyNode) index() {
+	arr, ok := isConstNode(n.r)
+	if !ok || arr.null || len(arr.arr) < 8 || n.kind == cmpNull ||
+		!(n.any && n.op == "=" || !n.any && n.op == "<>") {
+		return
+	}
+	for _, el := range arr.arr {
+		if el.null {
+			n.hasNull = true
+			continue
+		}
+		n.sorted = append(n.sorted, el)
+	}
+	sort.Slice(n.sorted, func(i, j int) bool { return compareValues(n.kind, n.sorted[i], n.sorted[j]) < 0 })
 }
 
 func (n *anyNode) typ() typ { return tBool }
@@ -449,6 +474,19 @@ func (n *anyNode) eval(e *env) (value, error) {
 	a, err := n.l.eval(e)
 	if err != nil {
 		return value{}, err
+	}
+	if n.sorted != nil || n.hasNull {
+		if a.null {
+			return nullOf(tBool), nil
+		}
+		i := sort.Search(len(n.sorted), func(i int) bool { return compareValues(n.kind, n.sorted[i], a) >= 0 })
+		switch {
+		case i < len(n.sorted) && compareValues(n.kind, n.sorted[i], a) == 0:
+			return boolVal(n.any), nil // found: = ANY is true, <> ALL false
+		case n.hasNull:
+			return nullOf(tBool), nil
+		}
+		return boolVal(!n.any), nil
 	}
 	arr, err := n.r.eval(e)
 	if err != nil {

@@ -196,11 +196,11 @@ func (sess *session) runSelect(st *selectStmt, params []paramVal, p *portal, max
 	ctx, end := sess.beginStatement()
 	defer end()
 	if p == nil {
-		pl, err := buildPlan(st, params, sess.set.location())
+		pl, err := buildPlan(st, params, sess.set.location(), &sess.srv.cfg.Limits)
 		if err != nil {
 			return err
 		}
-		it, err := pl.open(ctx, sess.srv.src)
+		it, err := pl.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
 		if err != nil {
 			return canceledOr(ctx, err)
 		}
@@ -215,7 +215,7 @@ func (sess *session) runSelect(st *selectStmt, params []paramVal, p *portal, max
 		return sess.complete("SELECT 0")
 	}
 	if p.it == nil {
-		it, err := p.plan.open(ctx, sess.srv.src)
+		it, err := p.plan.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
 		if err != nil {
 			return canceledOr(ctx, err)
 		}
@@ -255,13 +255,13 @@ func (sess *session) declare(st *declareStmt, params []paramVal) error {
 	if _, ok := sess.cursors[st.name]; ok {
 		return errorf(codeDuplicateCursor, "cursor %q already exists", st.name)
 	}
-	pl, err := buildPlan(st.query, params, sess.set.location())
+	pl, err := buildPlan(st.query, params, sess.set.location(), &sess.srv.cfg.Limits)
 	if err != nil {
 		return err
 	}
 	ctx, end := sess.beginStatement()
 	defer end()
-	it, err := pl.open(ctx, sess.srv.src)
+	it, err := pl.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
 	if err != nil {
 		return canceledOr(ctx, err)
 	}
@@ -607,7 +607,7 @@ func (sess *session) bind(m *pgproto3.Bind) error {
 	}
 	p := &portal{prep: prep, params: params}
 	if q, ok := prep.st.(*selectStmt); ok {
-		pl, err := buildPlan(q, params, sess.set.location())
+		pl, err := buildPlan(q, params, sess.set.location(), &sess.srv.cfg.Limits)
 		if err != nil {
 			return err
 		}
@@ -655,7 +655,7 @@ func (sess *session) describeResult(st stmt, params []paramVal, pl *plan) error 
 	case *selectStmt:
 		if pl == nil {
 			var err error
-			if pl, err = buildPlan(st, params, sess.set.location()); err != nil {
+			if pl, err = buildPlan(st, params, sess.set.location(), &sess.srv.cfg.Limits); err != nil {
 				return err
 			}
 		}

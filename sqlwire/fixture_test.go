@@ -85,9 +85,15 @@ func testLogger(t testing.TB) *slog.Logger {
 // database with sql/foreign.sql, run by psql as the project documents.
 func newFixture(t testing.TB, src *memSource) *fixture {
 	t.Helper()
+	return newFixtureConfig(t, src, Config{})
+}
+
+// newFixtureConfig is newFixture with an endpoint configured by cfg.
+func newFixtureConfig(t testing.TB, src *memSource, cfg Config) *fixture {
+	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	srv := startEndpoint(t, src, Config{})
+	srv := startEndpoint(t, src, cfg)
 	f := &fixture{srv: srv, src: src, port: srv.Addr().(*net.TCPAddr).Port, adminURL: pgtest.NewDatabase(t)}
 	ensureRoles(t, ctx, f.adminURL)
 	f.attach(t, testPassword)

@@ -50,12 +50,12 @@ func FuzzParse(f *testing.F) {
 			default:
 				continue
 			}
-			p, err := buildPlan(q, params, time.UTC)
+			p, err := buildPlan(q, params, time.UTC, nil)
 			if err != nil {
 				continue
 			}
 			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
-			it, err := p.open(ctx, src)
+			it, err := p.open(ctx, src, nil)
 			for i := 0; err == nil && i < 2000; i++ {
 				var row []value
 				if row, err = it.next(ctx); row == nil {

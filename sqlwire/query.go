@@ -8,16 +8,8 @@ import (
 	"strconv"
 	"strings"
 	"time"
+	"unsafe"
 )
-
-// maxHeldRows bounds the rows a query may hold in memory at once: the
-// rows of a sort, or the inner side of a join.
-const maxHeldRows = 2_000_000
-
-func tooManyRows(what string) error {
-	return errorf("54000", "%s needs more than %d rows in memory on the sidetrend endpoint", what, maxHeldRows).
-		withHint("narrow the query with conditions on tracker, series_key or horizon")
-}
 
 // plan is a compiled SELECT, ready to run against a Source.
 type plan struct {
@@ -56,10 +48,11 @@ func resultType(n node) typ {
 }
 
 // buildPlan compiles s with the given parameters. loc is the session's
-// TimeZone for timestamps without an offset.
-func buildPlan(s *selectStmt, params []paramVal, loc *time.Location) (*plan, error) {
+// TimeZone for timestamps without an offset; lim, when not nil, bounds the
+// IN lists.
+func buildPlan(s *selectStmt, params []paramVal, loc *time.Location, lim *Limits) (*plan, error) {
 	p := &plan{limit: -1}
-	c := &compiler{params: params, loc: loc}
+	c := &compiler{params: params, loc: loc, lim: lim}
 	for _, tr := range s.from {
 		if tr.schema != "" && tr.schema != Schema {
 			return nil, errorf(codeUndefinedTable, "relation \"%s.%s\" does not exist", tr.schema, tr.name).
@@ -195,7 +188,7 @@ func buildPlan(s *selectStmt, params []paramVal, loc *time.Location) (*plan, err
 	}
 	p.aggs = c.aggs
 
-	limits := &compiler{params: params, loc: loc, clause: "LIMIT"}
+	limits := &compiler{params: params, loc: loc, lim: lim, clause: "LIMIT"}
 	if s.limit != nil {
 		if p.limit, err = limitValue(limits, s.limit, "LIMIT"); err != nil {
 			return nil, err
@@ -348,16 +341,17 @@ func limitValue(c *compiler, x expr, what string) (int64, error) {
 	return v.i, nil
 }
 
-// open starts the query and returns an iterator over result rows.
-func (p *plan) open(ctx context.Context, src Source) (rowIter, error) {
-	in, err := p.input(ctx, src)
+// open starts the query and returns an iterator over result rows. b, when
+// not nil, is what the query may compute and hold.
+func (p *plan) open(ctx context.Context, src Source, b *budget) (rowIter, error) {
+	in, err := p.input(ctx, src, b)
 	if err != nil {
 		return nil, err
 	}
 	if !p.grouped && len(p.order) == 0 {
 		return &streamIter{p: p, in: in, out: make([]value, len(p.targets)), left: p.limit, skip: p.offset}, nil
 	}
-	rows, err := p.collect(ctx, in)
+	rows, err := p.collect(ctx, in, b)
 	if err != nil {
 		return nil, err
 	}
@@ -369,15 +363,29 @@ type inputIter interface {
 	next(ctx context.Context) (*env, error)
 }
 
-func (p *plan) input(ctx context.Context, src Source) (inputIter, error) {
+func (p *plan) input(ctx context.Context, src Source, b *budget) (inputIter, error) {
 	if len(p.rels) == 0 {
 		return &oneEnv{}, nil
 	}
-	scan := func(i int) (rowIter, error) {
-		return p.rels[i].table.scan(ctx, &scanRequest{src: src, domains: p.domains[i]})
+	scan := func(i int, heldPerRow int64) (rowIter, error) {
+		if b == nil {
+			return p.rels[i].table.scan(ctx, &scanRequest{src: src, domains: p.domains[i]})
+		}
+		b.heldPerRow = heldPerRow
+		it, err := p.rels[i].table.scan(ctx, &scanRequest{src: src, domains: p.domains[i], budget: b})
+		b.heldPerRow = 0
+		if err != nil {
+			return nil, err
+		}
+		return &countIter{it: it, b: b}, nil
+	}
+	// A sort without grouping holds each row that passes WHERE.
+	var sortedRow int64
+	if !p.grouped && len(p.order) > 0 {
+		sortedRow = int64(len(p.targets)+len(p.order)) * valueBytes
 	}
 	if len(p.rels) == 1 {
-		it, err := scan(0)
+		it, err := scan(0, sortedRow)
 		if err != nil {
 			return nil, err
 		}
@@ -387,7 +395,7 @@ func (p *plan) input(ctx context.Context, src Source) (inputIter, error) {
 	if p.joinKind == "right" {
 		outer, inner = 1, 0
 	}
-	innerIt, err := scan(inner)
+	innerIt, err := scan(inner, int64(len(p.rels[inner].table.cols))*valueBytes)
 	if err != nil {
 		return nil, err
 	}
@@ -400,16 +408,16 @@ func (p *plan) input(ctx context.Context, src Source) (inputIter, error) {
 		if r == nil {
 			break
 		}
-		if len(innerRows) >= maxHeldRows {
-			return nil, tooManyRows("the join")
+		if err := b.hold(r, "the join"); err != nil {
+			return nil, err
 		}
 		innerRows = append(innerRows, append([]value(nil), r...))
 	}
-	outerIt, err := scan(outer)
+	outerIt, err := scan(outer, sortedRow)
 	if err != nil {
 		return nil, err
 	}
-	return &joinEnv{p: p, outer: outerIt, innerRows: innerRows, outerIdx: outer, innerIdx: inner,
+	return &joinEnv{p: p, b: b, outer: outerIt, innerRows: innerRows, outerIdx: outer, innerIdx: inner,
 		e: &env{rows: make([][]value, 2)}}, nil
 }
 
@@ -441,6 +449,7 @@ func (s *scanEnv) next(ctx context.Context) (*env, error) {
 // rows, with the ON condition; outer joins add NULL-extended rows.
 type joinEnv struct {
 	p                  *plan
+	b                  *budget
 	outer              rowIter
 	innerRows          [][]value
 	outerIdx, innerIdx int
@@ -463,6 +472,9 @@ func (j *joinEnv) next(ctx context.Context) (*env, error) {
 		for j.j < len(j.innerRows) {
 			in := j.innerRows[j.j]
 			j.j++
+			if j.j%1024 == 0 && ctx.Err() != nil {
+				return nil, statementCanceled(ctx)
+			}
 			j.e.rows[j.outerIdx], j.e.rows[j.innerIdx] = j.cur, in
 			if j.p.on != nil {
 				ok, err := isTrue(j.p.on, j.e)
@@ -474,6 +486,9 @@ func (j *joinEnv) next(ctx context.Context) (*env, error) {
 				}
 			}
 			j.matched = true
+			if err := j.b.computed(1); err != nil {
+				return nil, err
+			}
 			return j.e, nil
 		}
 		cur, matched := j.cur, j.matched
@@ -540,15 +555,12 @@ func (s *streamIter) next(ctx context.Context) ([]value, error) {
 
 // collect runs a grouped or sorted query to completion and returns its
 // result rows after ORDER BY, OFFSET and LIMIT.
-func (p *plan) collect(ctx context.Context, in inputIter) ([][]value, error) {
+func (p *plan) collect(ctx context.Context, in inputIter, b *budget) ([][]value, error) {
 	type sorted struct {
 		out, keys []value
 	}
 	var rows []sorted
 	emit := func(e *env) error {
-		if len(rows) >= maxHeldRows {
-			return tooManyRows("ORDER BY")
-		}
 		r := sorted{out: make([]value, len(p.targets)), keys: make([]value, len(p.order))}
 		for i, t := range p.targets {
 			v, err := t.eval(e)
@@ -563,6 +575,12 @@ func (p *plan) collect(ctx context.Context, in inputIter) ([][]value, error) {
 				return err
 			}
 			r.keys[i] = v
+		}
+		if err := b.hold(r.out, "ORDER BY"); err != nil {
+			return err
+		}
+		if err := b.hold(r.keys, "ORDER BY"); err != nil {
+			return err
 		}
 		rows = append(rows, r)
 		return nil
@@ -606,6 +624,13 @@ func (p *plan) collect(ctx context.Context, in inputIter) ([][]value, error) {
 		}
 		gr := index[string(keyBuf)]
 		if gr == nil {
+			if err := b.hold(keys, "GROUP BY"); err != nil {
+				return nil, err
+			}
+			// Each aggregate's state, and the index entry.
+			if err := b.holdBytes(int64(len(p.aggs))*int64(unsafe.Sizeof(aggAcc{}))+int64(len(keyBuf))+64, "GROUP BY"); err != nil {
+				return nil, err
+			}
 			gr = newGroup(keys, p.aggs)
 			index[string(keyBuf)] = gr
 			groups = append(groups, gr)

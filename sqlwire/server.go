@@ -45,6 +45,12 @@ type Config struct {
 	// StartupTimeout bounds the time from connect to authenticated; 10 s
 	// when zero.
 	StartupTimeout time.Duration
+	// RequireTLS refuses clients that do not negotiate TLS (FATAL 28000);
+	// it needs TLSCertFile and TLSKeyFile.
+	RequireTLS bool
+	// Limits bound the work of one statement and of clients that have
+	// not logged in (limits.go).
+	Limits Limits
 }
 
 // DefaultDatabase is the database name clients connect to.
@@ -72,6 +78,11 @@ type Server struct {
 	stopOnce sync.Once
 
 	cancels atomic.Int64 // cancel requests that stopped a running statement
+
+	unauth         atomic.Int64 // connections that have not logged in yet
+	unauthRefused  atomic.Int64 // connections closed because of MaxUnauthenticated
+	lastRefusalLog atomic.Int64 // unix nanoseconds of the last refusal logged
+	authFailures   *authThrottle
 }
 
 // New returns a server for cfg that computes its tables from src. Start
@@ -89,8 +100,10 @@ func New(cfg Config, src Source, log *slog.Logger) *Server {
 	if cfg.StartupTimeout == 0 {
 		cfg.StartupTimeout = 10 * time.Second
 	}
+	cfg.Limits = cfg.Limits.withDefaults()
 	return &Server{cfg: cfg, src: src, log: log,
-		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{}}
+		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{},
+		authFailures: newAuthThrottle(cfg.Limits.AuthFailureDelay, cfg.Limits.AuthFailureMaxDelay, maxAuthAddresses)}
 }
 
 var errShutdown = errors.New("the sidetrend endpoint is shutting down")
@@ -117,6 +130,12 @@ func (s *Server) Start(ctx context.Context) error {
 	}
 	if s.cfg.Listen == "" {
 		return errors.New("sqlwire: no listen address: set one such as 127.0.0.1:5488")
+	}
+	if err := s.cfg.Limits.check(); err != nil {
+		return err
+	}
+	if s.cfg.RequireTLS && (s.cfg.TLSCertFile == "" || s.cfg.TLSKeyFile == "") {
+		return errors.New("sqlwire: TLS is required but no certificate is configured: give a certificate and key (--tls-cert, --tls-key) or turn off --sql-require-tls")
 	}
 	if len(s.cfg.Credentials) == 0 {
 		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
@@ -184,7 +203,7 @@ func (s *Server) Start(ctx context.Context) error {
 			}
 		}()
 	}
-	s.log.Info("sql endpoint listening", "addr", ln.Addr().String(), "tls", s.tls != nil)
+	s.log.Info("sql endpoint listening", "addr", ln.Addr().String(), "tls", s.tls != nil, "require_tls", s.cfg.RequireTLS)
 	return nil
 }
 
@@ -222,6 +241,14 @@ func (s *Server) Stop() {
 	})
 }
 
+// Unauthenticated is the number of connections that have not logged in
+// yet.
+func (s *Server) Unauthenticated() int { return int(s.unauth.Load()) }
+
+// RefusedUnauthenticated is the number of connections closed at once since
+// Start because MaxUnauthenticated others had not logged in yet.
+func (s *Server) RefusedUnauthenticated() int64 { return s.unauthRefused.Load() }
+
 // Sessions is the number of authenticated sessions open now.
 func (s *Server) Sessions() int {
 	s.mu.Lock()
@@ -252,7 +279,11 @@ func (s *Server) acceptLoop() {
 			continue
 		}
 		delay = 0
+		if !s.admitUnauthenticated(conn) {
+			continue
+		}
 		if !s.track(conn) {
+			s.unauth.Add(-1)
 			conn.Close()
 			continue
 		}

@@ -19,10 +19,6 @@ import (
 	"github.com/jackc/pgx/v5/pgproto3"
 )
 
-// maxMessageLen bounds one frontend message; statements postgres_fdw
-// sends are far smaller.
-const maxMessageLen = 16 << 20
-
 // flushEvery is how many data rows are buffered before they are written.
 const flushEvery = 256
 
@@ -100,9 +96,15 @@ type portal struct {
 
 // serveConn runs one connection from the first byte to close.
 func (s *Server) serveConn(conn net.Conn) {
+	loggedIn := false
+	defer func() {
+		if !loggedIn {
+			s.unauth.Add(-1)
+		}
+	}()
 	conn.SetDeadline(time.Now().Add(s.cfg.StartupTimeout))
 	be := pgproto3.NewBackend(conn, conn)
-	be.SetMaxBodyLen(maxMessageLen)
+	be.SetMaxBodyLen(s.cfg.Limits.MaxMessageSize)
 	sess, err := s.startup(conn, be)
 	if err != nil {
 		if sess != nil && sess.be != nil {
@@ -122,6 +124,8 @@ func (s *Server) serveConn(conn net.Conn) {
 	if sess == nil {
 		return // a cancel request, or a client that went away
 	}
+	loggedIn = true
+	s.unauth.Add(-1)
 	defer s.unregister(sess)
 	sess.loop()
 }
@@ -163,7 +167,7 @@ func (s *Server) startup(conn net.Conn, be *pgproto3.Backend) (*session, error) 
 			}
 			conn = tconn
 			be = pgproto3.NewBackend(conn, conn)
-			be.SetMaxBodyLen(maxMessageLen)
+			be.SetMaxBodyLen(s.cfg.Limits.MaxMessageSize)
 			sess.conn, sess.be = conn, be
 			encrypted = true
 		case *pgproto3.GSSEncRequest:
@@ -174,6 +178,10 @@ func (s *Server) startup(conn net.Conn, be *pgproto3.Backend) (*session, error) 
 			s.cancelRequest(m.ProcessID, m.SecretKey)
 			return nil, nil
 		case *pgproto3.StartupMessage:
+			if s.cfg.RequireTLS && !encrypted {
+				return sess, fatalf(codeInvalidAuth, "TLS is required: the sidetrend endpoint refuses connections without TLS").
+					withHint("connect with sslmode=require (or verify-ca, verify-full); for postgres_fdw, set sslmode 'require' on the foreign server")
+			}
 			return sess, sess.begin(m)
 		default:
 			return sess, fatalf(codeProtocolViolation, "unexpected startup message %T", msg)
@@ -261,7 +269,7 @@ func (sess *session) begin(m *pgproto3.StartupMessage) error {
 	}
 	sess.be.Send(&pgproto3.BackendKeyData{ProcessID: sess.pid, SecretKey: sess.secret[:]})
 	sess.be.Send(&pgproto3.ReadyForQuery{TxStatus: byte(txIdle)})
-	sess.be.SetMaxBodyLen(maxMessageLen)
+	sess.be.SetMaxBodyLen(s.cfg.Limits.MaxMessageSize)
 	sess.log = sess.log.With("pid", sess.pid)
 	sess.log.Debug("sql endpoint session started")
 	return sess.be.Flush()
@@ -350,7 +358,14 @@ func (sess *session) authenticate() error {
 		return fatalf(codeProtocolViolation, "%v", err)
 	}
 	if !good || !known {
-		sess.log.Info("sql endpoint authentication failed", "known_user", known)
+		delay := s.authFailures.failed(hostOf(sess.conn.RemoteAddr()))
+		sess.log.Info("sql endpoint authentication failed", "known_user", known, "delay", delay)
+		t := time.NewTimer(delay)
+		defer t.Stop()
+		select {
+		case <-t.C:
+		case <-s.ctx.Done():
+		}
 		return fail()
 	}
 	sess.be.Send(&pgproto3.AuthenticationSASLFinal{Data: []byte(final)})
@@ -371,6 +386,11 @@ func (sess *session) loop() {
 		if err != nil {
 			if sess.srv.ctx.Err() != nil {
 				sess.goodbye(fatalf(codeAdminShutdown, "terminating connection due to administrator command"))
+				return
+			}
+			var tooLong *pgproto3.ExceededMaxBodyLenErr
+			if errors.As(err, &tooLong) {
+				sess.refuseMessage(tooLong.ActualBodyLen)
 				return
 			}
 			if !isDisconnect(err) {
@@ -508,14 +528,20 @@ func (sess *session) endImplicit() {
 }
 
 // beginStatement returns the context a statement runs under: cancelled by
-// a CancelRequest, statement_timeout or the server stopping.
+// a CancelRequest, statement_timeout, the endpoint's statement timeout, the
+// client going away or the server stopping.
 func (sess *session) beginStatement() (context.Context, func()) {
 	ctx, cancel := context.WithCancelCause(sess.srv.ctx)
 	var stopTimer func() bool
-	if d := sess.set.statementTimeout(); d > 0 {
+	if d := sess.set.statementTimeout(); d > 0 && d < sess.srv.cfg.Limits.StatementTimeout {
 		t := time.AfterFunc(d, func() { cancel(errStatementTimeout) })
 		stopTimer = t.Stop
+	} else {
+		lim := &sess.srv.cfg.Limits
+		t := time.AfterFunc(lim.StatementTimeout, func() { cancel(lim.statementTimeoutError()) })
+		stopTimer = t.Stop
 	}
+	stopWatch := sess.watchClient(cancel)
 	sess.mu.Lock()
 	sess.cancelStmt = cancel
 	sess.mu.Unlock()
@@ -523,9 +549,8 @@ func (sess *session) beginStatement() (context.Context, func()) {
 		sess.mu.Lock()
 		sess.cancelStmt = nil
 		sess.mu.Unlock()
-		if stopTimer != nil {
-			stopTimer()
-		}
+		stopTimer()
+		stopWatch()
 		cancel(nil)
 	}
 }
@@ -543,11 +568,19 @@ func (sess *session) cancelStatement(cause error) bool {
 
 // statementCanceled is the error of a statement whose context ended.
 func statementCanceled(ctx context.Context) error {
-	switch context.Cause(ctx) {
+	switch cause := context.Cause(ctx); cause {
 	case errStatementTimeout:
 		return errorf(codeQueryCanceled, "canceling statement due to statement timeout")
+	case errClientGone:
+		return errorf(codeQueryCanceled, "canceling statement because the client disconnected")
 	case errShutdown:
 		return fatalf(codeAdminShutdown, "terminating connection due to administrator command")
+	default:
+		// The endpoint's own statement timeout carries its error.
+		var se *sqlError
+		if errors.As(cause, &se) {
+			return se
+		}
 	}
 	return errorf(codeQueryCanceled, "canceling statement due to user request")
 }

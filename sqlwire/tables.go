@@ -55,6 +55,7 @@ func (t *tableDef) columnList() string {
 type scanRequest struct {
 	src     Source
 	domains []domain
+	budget  *budget // nil: unbounded
 }
 
 // rowIter yields rows one at a time; a returned row is valid until the
@@ -308,6 +309,14 @@ func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
 	if err != nil {
 		return nil, err
 	}
+	nl := 1
+	if pinned {
+		nl = len(ls)
+	}
+	if err := req.budget.expect(int64(len(infos))*int64(nl)*int64(len(hs)),
+		fmt.Sprintf("%d series x %s x %s", len(infos), plural(nl, "lambda"), plural(len(hs), "horizon"))); err != nil {
+		return nil, err
+	}
 	it := &forecastIter{req: req, infos: infos, horizons: hs, maxH: hs[len(hs)-1],
 		row: make([]value, fcCumHi95+1)}
 	if pinned {
@@ -452,6 +461,10 @@ func scanBacktest(ctx context.Context, req *scanRequest) (rowIter, error) {
 	if err != nil {
 		return nil, err
 	}
+	if err := req.budget.expect(int64(len(infos))*int64(len(ls)),
+		fmt.Sprintf("%d series x %s", len(infos), plural(len(ls), "lambda"))); err != nil {
+		return nil, err
+	}
 	return &backtestIter{req: req, infos: infos, lambdas: ls, row: make([]value, 8)}, nil
 }
 
@@ -508,6 +521,9 @@ func (it *backtestIter) next(ctx context.Context) ([]value, error) {
 func scanSeries(ctx context.Context, req *scanRequest) (rowIter, error) {
 	infos, err := listSeries(ctx, req)
 	if err != nil {
+		return nil, err
+	}
+	if err := req.budget.expect(int64(len(infos)), fmt.Sprintf("%d series", len(infos))); err != nil {
 		return nil, err
 	}
 	rows := make([][]value, len(infos))

@@ -6,6 +6,7 @@ import (
 	"fmt"
 
 	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/urfave/cli/v2"
 
 	"github.com/sidetrend/sidetrend/calendar"
 	"github.com/sidetrend/sidetrend/estimator"
@@ -70,4 +71,62 @@ func (s liveSource) Values(ctx context.Context, tracker, key string) ([]float64,
 		return nil, err
 	}
 	return d.Values, nil
+}
+
+// liveLimitFlags are the live endpoint's TLS requirement and limits
+// (sqlwire.Limits; README, "Live endpoint limits").
+func liveLimitFlags() []cli.Flag {
+	return []cli.Flag{
+		&cli.BoolFlag{Name: "sql-require-tls", Usage: "refuse live endpoint clients that do not use TLS (needs --tls-cert and --tls-key)", EnvVars: []string{"SIDETREND_SQL_REQUIRE_TLS"}},
+		&cli.IntFlag{Name: "sql-max-connections", Value: 200, Usage: "logged-in sessions the live endpoint serves at once", EnvVars: []string{"SIDETREND_SQL_MAX_CONNECTIONS"}},
+		&cli.IntFlag{Name: "sql-max-unauthenticated", Value: sqlwire.DefaultMaxUnauthenticated, Usage: "connections that have not logged in yet; beyond it new ones are closed at once", EnvVars: []string{"SIDETREND_SQL_MAX_UNAUTHENTICATED"}},
+		&cli.DurationFlag{Name: "sql-statement-timeout", Value: sqlwire.DefaultStatementTimeout, Usage: "stop a live endpoint statement that runs longer (SQLSTATE 57014)", EnvVars: []string{"SIDETREND_SQL_STATEMENT_TIMEOUT"}},
+		&cli.IntFlag{Name: "sql-max-in-list", Value: sqlwire.DefaultMaxInList, Usage: "values one IN (...) list or ANY array may have", EnvVars: []string{"SIDETREND_SQL_MAX_IN_LIST"}},
+		&cli.Int64Flag{Name: "sql-max-rows", Value: sqlwire.DefaultMaxRows, Usage: "rows one statement may compute", EnvVars: []string{"SIDETREND_SQL_MAX_ROWS"}},
+		&cli.Int64Flag{Name: "sql-max-statement-memory-mb", Value: sqlwire.DefaultMaxStatementMemory >> 20, Usage: "MiB one statement may hold for a sort, GROUP BY or join", EnvVars: []string{"SIDETREND_SQL_MAX_STATEMENT_MEMORY_MB"}},
+		&cli.IntFlag{Name: "sql-max-message-kb", Value: sqlwire.DefaultMaxMessageSize >> 10, Usage: "KiB one message (a query's text and parameters) may have", EnvVars: []string{"SIDETREND_SQL_MAX_MESSAGE_KB"}},
+		&cli.DurationFlag{Name: "sql-auth-failure-delay", Value: sqlwire.DefaultAuthFailureDelay, Usage: "delay after a failed login, doubling with each further failure from the same address", EnvVars: []string{"SIDETREND_SQL_AUTH_FAILURE_DELAY"}},
+		&cli.DurationFlag{Name: "sql-auth-failure-max-delay", Value: sqlwire.DefaultAuthFailureMaxDelay, Usage: "longest delay after a failed login", EnvVars: []string{"SIDETREND_SQL_AUTH_FAILURE_MAX_DELAY"}},
+	}
+}
+
+// liveConfig reads the live endpoint's TLS and limit flags.
+func liveConfig(c *cli.Context) (sqlwire.Config, error) {
+	positive := func(name string, v int64) error {
+		if v < 1 {
+			return fmt.Errorf("--%s %d: use a positive number", name, v)
+		}
+		return nil
+	}
+	for _, name := range []string{"sql-max-connections", "sql-max-unauthenticated", "sql-max-in-list", "sql-max-message-kb"} {
+		if err := positive(name, int64(c.Int(name))); err != nil {
+			return sqlwire.Config{}, err
+		}
+	}
+	for _, name := range []string{"sql-max-rows", "sql-max-statement-memory-mb"} {
+		if err := positive(name, c.Int64(name)); err != nil {
+			return sqlwire.Config{}, err
+		}
+	}
+	for _, name := range []string{"sql-statement-timeout", "sql-auth-failure-delay", "sql-auth-failure-max-delay"} {
+		if d := c.Duration(name); d <= 0 {
+			return sqlwire.Config{}, fmt.Errorf("--%s %v: use a positive duration such as 30s or 250ms", name, d)
+		}
+	}
+	return sqlwire.Config{
+		TLSCertFile:    c.String("tls-cert"),
+		TLSKeyFile:     c.String("tls-key"),
+		RequireTLS:     c.Bool("sql-require-tls"),
+		MaxConnections: c.Int("sql-max-connections"),
+		Limits: sqlwire.Limits{
+			StatementTimeout:    c.Duration("sql-statement-timeout"),
+			MaxInList:           c.Int("sql-max-in-list"),
+			MaxRows:             c.Int64("sql-max-rows"),
+			MaxStatementMemory:  c.Int64("sql-max-statement-memory-mb") << 20,
+			MaxMessageSize:      c.Int("sql-max-message-kb") << 10,
+			MaxUnauthenticated:  c.Int("sql-max-unauthenticated"),
+			AuthFailureDelay:    c.Duration("sql-auth-failure-delay"),
+			AuthFailureMaxDelay: c.Duration("sql-auth-failure-max-delay"),
+		},
+	}, nil
 }

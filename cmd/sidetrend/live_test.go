@@ -6,9 +6,12 @@ import (
 	"os"
 	"os/exec"
 	"strconv"
+	"strings"
 	"testing"
+	"time"
 
 	"github.com/jackc/pgx/v5"
+	"github.com/urfave/cli/v2"
 	"gonum.org/v1/gonum/floats/scalar"
 
 	"github.com/sidetrend/sidetrend/estimator"
@@ -108,5 +111,62 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 	}
 	if n != es.N {
 		t.Errorf("backtest n_errors %d, want %d", n, es.N)
+	}
+}
+
+// liveConfigFrom parses the live endpoint's flags as run does.
+func liveConfigFrom(t *testing.T, args ...string) (sqlwire.Config, error) {
+	t.Helper()
+	var cfg sqlwire.Config
+	var cfgErr error
+	app := &cli.App{Name: "x", Flags: liveLimitFlags(), Action: func(c *cli.Context) error {
+		cfg, cfgErr = liveConfig(c)
+		return nil
+	}}
+	if err := app.Run(append([]string{"x"}, args...)); err != nil {
+		t.Fatal(err)
+	}
+	return cfg, cfgErr
+}
+
+// TestLiveLimitFlags: the flags and SIDETREND_SQL_* variables reach
+// sqlwire.Limits, the defaults are sqlwire's, and --sql-require-tls
+// without a certificate stops the endpoint at Start.
+func TestLiveLimitFlags(t *testing.T) {
+	cfg, err := liveConfigFrom(t)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := sqlwire.Limits{StatementTimeout: sqlwire.DefaultStatementTimeout, MaxInList: sqlwire.DefaultMaxInList,
+		MaxRows: sqlwire.DefaultMaxRows, MaxStatementMemory: sqlwire.DefaultMaxStatementMemory,
+		MaxMessageSize: sqlwire.DefaultMaxMessageSize, MaxUnauthenticated: sqlwire.DefaultMaxUnauthenticated,
+		AuthFailureDelay: sqlwire.DefaultAuthFailureDelay, AuthFailureMaxDelay: sqlwire.DefaultAuthFailureMaxDelay}
+	if cfg.Limits != want || cfg.RequireTLS || cfg.MaxConnections != 200 {
+		t.Errorf("defaults: %+v, want %+v", cfg, want)
+	}
+
+	t.Setenv("SIDETREND_SQL_MAX_ROWS", "5000")
+	t.Setenv("SIDETREND_SQL_REQUIRE_TLS", "true")
+	cfg, err = liveConfigFrom(t, "--sql-statement-timeout", "2s", "--sql-max-statement-memory-mb", "3",
+		"--sql-max-message-kb", "64", "--sql-max-in-list", "7", "--sql-max-unauthenticated", "9",
+		"--sql-auth-failure-delay", "1s", "--sql-auth-failure-max-delay", "8s")
+	if err != nil {
+		t.Fatal(err)
+	}
+	want = sqlwire.Limits{StatementTimeout: 2 * time.Second, MaxInList: 7, MaxRows: 5000, MaxStatementMemory: 3 << 20,
+		MaxMessageSize: 64 << 10, MaxUnauthenticated: 9, AuthFailureDelay: time.Second, AuthFailureMaxDelay: 8 * time.Second}
+	if cfg.Limits != want || !cfg.RequireTLS {
+		t.Errorf("set: %+v, want %+v and RequireTLS", cfg, want)
+	}
+	cfg.Listen, cfg.Credentials = "127.0.0.1:0", map[string]string{"sidetrend": "x"}
+	err = sqlwire.New(cfg, liveSource{}, nil).Start(context.Background())
+	if err == nil || !strings.Contains(err.Error(), "TLS is required but no certificate") {
+		t.Errorf("--sql-require-tls without --tls-cert: %v", err)
+	}
+
+	for _, bad := range [][]string{{"--sql-max-in-list", "0"}, {"--sql-max-rows", "-1"}, {"--sql-statement-timeout", "0s"}} {
+		if _, err := liveConfigFrom(t, bad...); err == nil || !strings.Contains(err.Error(), bad[0]) {
+			t.Errorf("%v: %v, want an error naming the flag", bad, err)
+		}
 	}
 }

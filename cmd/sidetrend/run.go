@@ -18,7 +18,7 @@ func runCommand() *cli.Command {
 		Description: "With no database configured (no --db, DATABASE_URL, SIDETREND_DB, PGHOST nor PGDATABASE),\n" +
 			"run starts a private Postgres in --data-dir (or uses the one already running there),\n" +
 			"prints its connection string, and runs against its database \"" + embeddedDB + "\".",
-		Flags: []cli.Flag{
+		Flags: append([]cli.Flag{
 			dbFlag,
 			&cli.BoolFlag{Name: "once", Usage: "drain everything pending, fold every due bucket, and exit", EnvVars: []string{"SIDETREND_ONCE"}},
 			&cli.DurationFlag{Name: "poll", Value: 5 * time.Second, Usage: "fallback poll interval when no NOTIFY arrives", EnvVars: []string{"SIDETREND_POLL"}},
@@ -33,7 +33,7 @@ func runCommand() *cli.Command {
 			&cli.StringFlag{Name: "tls-cert", Usage: "TLS certificate (PEM) for the live endpoint", EnvVars: []string{"SIDETREND_TLS_CERT"}},
 			&cli.StringFlag{Name: "tls-key", Usage: "TLS private key (PEM) for the live endpoint", EnvVars: []string{"SIDETREND_TLS_KEY"}},
 			&cli.IntFlag{Name: "pg-port", Usage: "TCP port on 127.0.0.1 for that private Postgres; 0 picks a free one", EnvVars: []string{"SIDETREND_PG_PORT"}},
-		},
+		}, liveLimitFlags()...),
 		Action: func(c *cli.Context) error {
 			log := newLogger(c)
 			workers, batch := c.Int("workers"), c.Int("batch-size")
@@ -132,8 +132,13 @@ func startLive(c *cli.Context, addr, db string, log *slog.Logger) (func(), error
 	if err != nil {
 		return nil, err
 	}
-	srv := sqlwire.New(sqlwire.Config{Listen: addr, Credentials: creds,
-		TLSCertFile: c.String("tls-cert"), TLSKeyFile: c.String("tls-key")}, liveSource{pool: pool}, log)
+	cfg, err := liveConfig(c)
+	if err != nil {
+		pool.Close()
+		return nil, err
+	}
+	cfg.Listen, cfg.Credentials = addr, creds
+	srv := sqlwire.New(cfg, liveSource{pool: pool}, log)
 	if err := srv.Start(c.Context); err != nil {
 		pool.Close()
 		return nil, fmt.Errorf("live endpoint: %w", err)
