@@ -12,6 +12,9 @@
 --                        logs sidetrend.surprises and sidetrend.forecast_history;
 --                        nothing on the internal tables (trackers, changes,
 --                        points, series, rejects, tuning, tune_requests).
+--                        forecast_history, accuracy_by_horizon and
+--                        rejected_rows (the rejects with tracker names) show a
+--                        reader only trackers whose source table it may SELECT.
 --   sidetrend_writer     what the reader has, plus EXECUTE on sidetrend.track(),
 --                        untrack(), tune() and request_tune().
 --

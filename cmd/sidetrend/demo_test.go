@@ -123,7 +123,7 @@ func checkMonthEnd(t *testing.T, url string) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			want += fc.CumYhat[r.daysLeft-1]
+			want += fc.CumForecast[r.daysLeft-1]
 		}
 		// The query rounds to whole euros: half a euro either way.
 		if math.Abs(r.projected-want) > 0.5 {

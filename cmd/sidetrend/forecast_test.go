@@ -86,9 +86,9 @@ func TestForecastBakeryCSV(t *testing.T) {
 		t.Errorf("first row %v", first)
 	}
 	for _, r := range recs[1:] {
-		lo95, yhat, hi95 := parseNum(t, r[6]), parseNum(t, r[3]), parseNum(t, r[7])
-		if !(lo95 < yhat && yhat < hi95) {
-			t.Errorf("row %v: yhat outside its 95%% interval", r)
+		lower95, forecast, upper95 := parseNum(t, r[6]), parseNum(t, r[3]), parseNum(t, r[7])
+		if !(lower95 < forecast && forecast < upper95) {
+			t.Errorf("row %v: forecast outside its 95%% interval", r)
 		}
 	}
 }
@@ -155,14 +155,14 @@ func TestForecastMatchesEstimator(t *testing.T) {
 			for l, r := range rows {
 				// The CSV prints the shortest text that reads back as the
 				// same float64, so the values compare exactly.
-				if got := parseNum(t, r[3]); got != fc.Yhat[l] {
-					t.Errorf("empty=%s series %s h=%d: yhat %v, estimator %v", empty, key, l+1, got, fc.Yhat[l])
+				if got := parseNum(t, r[3]); got != fc.Forecast[l] {
+					t.Errorf("empty=%s series %s h=%d: forecast %v, estimator %v", empty, key, l+1, got, fc.Forecast[l])
 				}
-				if got := parseNum(t, r[8]); got != fc.CumYhat[l] {
-					t.Errorf("empty=%s series %s h=%d: cum_yhat %v, estimator %v", empty, key, l+1, got, fc.CumYhat[l])
+				if got := parseNum(t, r[8]); got != fc.CumForecast[l] {
+					t.Errorf("empty=%s series %s h=%d: cum_forecast %v, estimator %v", empty, key, l+1, got, fc.CumForecast[l])
 				}
-				if r[7] != "" && parseNum(t, r[7]) != fc.Hi95[l] {
-					t.Errorf("empty=%s series %s h=%d: hi95 %s, estimator %v", empty, key, l+1, r[7], fc.Hi95[l])
+				if r[7] != "" && parseNum(t, r[7]) != fc.Upper95[l] {
+					t.Errorf("empty=%s series %s h=%d: upper95 %s, estimator %v", empty, key, l+1, r[7], fc.Upper95[l])
 				}
 				if r[11] != asOf {
 					t.Errorf("series %s: as_of %s, want %s", key, r[11], asOf)
@@ -195,8 +195,8 @@ func TestForecastMatchesEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	recs := readCSVOutput(t, out)
-	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Yhat[0] {
-		t.Errorf("lambda auto: row %v, estimator yhat %v (lambda %v)", recs[1], fc.Yhat[0], res.Lambda)
+	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Forecast[0] {
+		t.Errorf("lambda auto: row %v, estimator forecast %v (lambda %v)", recs[1], fc.Forecast[0], res.Lambda)
 	}
 }
 
@@ -233,15 +233,15 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 		if !slices.Equal(keys, wantKeys) {
 			t.Errorf("row keys %v, want %v", keys, wantKeys)
 		}
-		for _, k := range []string{"lo80", "hi80", "lo95", "hi95", "cum_lo95", "cum_hi95"} {
+		for _, k := range []string{"lower80", "upper80", "lower95", "upper95", "cum_lower95", "cum_upper95"} {
 			if r[k] != nil {
 				t.Errorf("%s = %v, want null while T <= p", k, r[k])
 			}
 		}
 		// A line through (0, 5) and (1, 7) goes on with slope 2: 9, then 11.
 		h := r["horizon"].(float64)
-		if y := r["yhat"].(float64); math.Abs(y-(7+2*h)) > 1e-9 {
-			t.Errorf("horizon %v: yhat %v, want %v", h, y, 7+2*h)
+		if y := r["forecast"].(float64); math.Abs(y-(7+2*h)) > 1e-9 {
+			t.Errorf("horizon %v: forecast %v, want %v", h, y, 7+2*h)
 		}
 	}
 	// CSV prints undefined bounds as empty fields.
@@ -250,7 +250,7 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 		t.Fatal(err)
 	}
 	if r := readCSVOutput(t, out)[1]; r[4] != "" || r[7] != "" || r[3] == "" {
-		t.Errorf("csv row %v: want empty bounds and a yhat", r)
+		t.Errorf("csv row %v: want empty bounds and a forecast", r)
 	}
 }
 

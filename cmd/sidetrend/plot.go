@@ -118,8 +118,8 @@ type chartData struct {
 	FitT []time.Time // one-step forecasts of the scored buckets
 	FitY []float64
 
-	FcT                          []time.Time
-	Yhat, Lo80, Hi80, Lo95, Hi95 []float64
+	FcT                                          []time.Time
+	Forecast, Lower80, Upper80, Lower95, Upper95 []float64
 
 	// Trend is the slope drawn as a segment through the level at the newest
 	// bucket: (TrendT[0], TrendY[0]) to (TrendT[1], TrendY[1]).
@@ -181,7 +181,7 @@ func buildChart(d *pgsync.SeriesData, from time.Time) (*chartData, error) {
 		}
 		cd.ObsT, cd.ObsY = append(cd.ObsT, d.Starts[i]), append(cd.ObsY, y)
 		if step.Scored {
-			cd.FitT, cd.FitY = append(cd.FitT, d.Starts[i]), append(cd.FitY, step.Yhat)
+			cd.FitT, cd.FitY = append(cd.FitT, d.Starts[i]), append(cd.FitY, step.Forecast)
 		}
 	}
 	if len(cd.ObsT) == 0 {
@@ -209,7 +209,7 @@ func buildChart(d *pgsync.SeriesData, from time.Time) (*chartData, error) {
 	for l := 1; l <= t.Horizon; l++ {
 		cd.FcT = append(cd.FcT, cal.Start(d.LastIndex+int64(l)))
 	}
-	cd.Yhat, cd.Lo80, cd.Hi80, cd.Lo95, cd.Hi95 = fc.Yhat, fc.Lo80, fc.Hi80, fc.Lo95, fc.Hi95
+	cd.Forecast, cd.Lower80, cd.Upper80, cd.Lower95, cd.Upper95 = fc.Forecast, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95
 	sl, err := st.Slope()
 	if err != nil {
 		return nil, fmt.Errorf("slope %q/%q: %w", t.Name, d.Key, err)
@@ -310,11 +310,11 @@ func writeChart(cd *chartData, path string, wpx, hpx int) error {
 			poly.LineStyle.Width = 0
 			return poly, nil
 		}
-		b95, err := band(cd.FcT, cd.Lo95, cd.Hi95, colBand95)
+		b95, err := band(cd.FcT, cd.Lower95, cd.Upper95, colBand95)
 		if err != nil {
 			return fmt.Errorf("chart: 95 %% band: %w", err)
 		}
-		b80, err := band(cd.FcT, cd.Lo80, cd.Hi80, colBand80)
+		b80, err := band(cd.FcT, cd.Lower80, cd.Upper80, colBand80)
 		if err != nil {
 			return fmt.Errorf("chart: 80 %% band: %w", err)
 		}
@@ -343,7 +343,7 @@ func writeChart(cd *chartData, path string, wpx, hpx int) error {
 		legend.Add("one-step forecast", fit)
 	}
 	if len(cd.FcT) > 0 {
-		fc, err := plotter.NewLine(timeXYs(cd.FcT, cd.Yhat))
+		fc, err := plotter.NewLine(timeXYs(cd.FcT, cd.Forecast))
 		if err != nil {
 			return fmt.Errorf("chart: forecast: %w", err)
 		}

@@ -65,7 +65,7 @@ func TestChartMatchesViews(t *testing.T) {
 		t.Errorf("%d fitted values for %d buckets", len(cd.FitT), len(cd.ObsT))
 	}
 
-	rows, err := pool.Query(ctx, `SELECT period_start, yhat, lo80, hi80, lo95, hi95 FROM sidetrend.forecasts
+	rows, err := pool.Query(ctx, `SELECT period_start, forecast, lower80, upper80, lower95, upper95 FROM sidetrend.forecasts
 		WHERE tracker = 'sales' AND series_key = 'north' ORDER BY horizon`)
 	if err != nil {
 		t.Fatal(err)
@@ -76,8 +76,8 @@ func TestChartMatchesViews(t *testing.T) {
 	const tol = 1e-12
 	for rows.Next() {
 		var at time.Time
-		var y, lo80, hi80, lo95, hi95 float64
-		if err := rows.Scan(&at, &y, &lo80, &hi80, &lo95, &hi95); err != nil {
+		var y, lower80, upper80, lower95, upper95 float64
+		if err := rows.Scan(&at, &y, &lower80, &upper80, &lower95, &upper95); err != nil {
 			t.Fatal(err)
 		}
 		if n >= len(cd.FcT) {
@@ -89,7 +89,7 @@ func TestChartMatchesViews(t *testing.T) {
 		for _, c := range []struct {
 			name      string
 			got, want float64
-		}{{"yhat", cd.Yhat[n], y}, {"lo80", cd.Lo80[n], lo80}, {"hi80", cd.Hi80[n], hi80}, {"lo95", cd.Lo95[n], lo95}, {"hi95", cd.Hi95[n], hi95}} {
+		}{{"forecast", cd.Forecast[n], y}, {"lower80", cd.Lower80[n], lower80}, {"upper80", cd.Upper80[n], upper80}, {"lower95", cd.Lower95[n], lower95}, {"upper95", cd.Upper95[n], upper95}} {
 			if !scalar.EqualWithinAbsOrRel(c.got, c.want, tol, tol) {
 				t.Errorf("horizon %d %s: chart %v, view %v", n+1, c.name, c.got, c.want)
 			}
