@@ -38,7 +38,8 @@ func TestDemo(t *testing.T) {
 	}
 	// 1s / 250ms = 4 live days, 2025-04-13 to 2025-04-16, each a line.
 	for _, day := range []string{"2025-04-13", "2025-04-14", "2025-04-15", "2025-04-16"} {
-		if !regexp.MustCompile(`(?m)^` + day + ` +[0-9.]+ +\w{3} \d\d +\d+ \[`).MatchString(out) {
+		// new day, takings, next day, lower95, forecast, upper95, a bar
+		if !regexp.MustCompile(`(?m)^` + day + ` +[0-9.]+ +\w{3} \d\d +\d+ +\d+ +\d+ \|`).MatchString(out) {
 			t.Errorf("no live line for %s in:\n%s", day, out)
 		}
 	}

@@ -26,6 +26,12 @@ const forecastCaution = "Caution: forecasts and intervals are estimates under mo
 var forecastColumns = []string{"series_key", "horizon", "period_start", "forecast", "lower80", "upper80",
 	"lower95", "upper95", "cum_forecast", "cum_lower95", "cum_upper95", "as_of"}
 
+// forecastTableHeader heads the table output: steps ahead, the bucket, the
+// 95 % and 80 % bounds around the forecast, and after a bar the cumulative
+// forecast with its 95 % bounds.
+var forecastTableHeader = []string{"ahead", "period start", "lower95", "lower80", "forecast", "upper80", "upper95",
+	"|", "cum_lower95", "cum_forecast", "cum_upper95"}
+
 // wallLayouts are the time forms without a zone that the CSV may use; they
 // are wall-clock time in --tz. Go's parser takes a fractional second after
 // the seconds even though the layout has none.
@@ -54,7 +60,7 @@ func forecastCommand() *cli.Command {
 			&cli.IntFlag{Name: "degree", Value: 1, Usage: "polynomial trend degree, 0 to 3"},
 			&cli.Float64Flag{Name: "period", Usage: "seasonal period in buckets (7 for weekly in days); 0 for none"},
 			&cli.IntFlag{Name: "harmonics", Usage: "harmonic pairs for the season, 1 to 6, with --period"},
-			&cli.StringFlag{Name: "lambda", Value: "0.95", Usage: "forgetting factor in (0, 1], or 'auto' to choose it per series by one-step error"},
+			&cli.StringFlag{Name: "lambda", Usage: "forgetting factor in (0, 1]; left out, each series' own is chosen from the data by one-step error"},
 			&cli.IntFlag{Name: "burn-in", Usage: "points beyond the parameter count before a series gets forecasts"},
 			&cli.IntFlag{Name: "horizon", Value: 12, Usage: "buckets to forecast"},
 			&cli.StringFlag{Name: "format", Value: "table", Usage: "output: table (for reading), csv or json"},
@@ -150,13 +156,14 @@ func forecastOptionsFrom(c *cli.Context) (forecastOptions, error) {
 		return o, fmt.Errorf("--period %v needs --harmonics: give 1 to %d harmonic pairs (more follow a sharper seasonal shape)",
 			o.spec.Period, min(estimator.MaxHarmonics, int(math.Floor(o.spec.Period/2))))
 	}
-	switch l := c.String("lambda"); l {
-	case "auto":
-		o.autoLambda = true
-	default:
+	// Without --lambda each series' forgetting factor is chosen from its
+	// data, as lambda => NULL does in sidetrend.track.
+	o.autoLambda = !c.IsSet("lambda")
+	if !o.autoLambda {
+		l := c.String("lambda")
 		v, err := strconv.ParseFloat(strings.TrimSpace(l), 64)
 		if err != nil {
-			return o, fmt.Errorf("--lambda %q is not a number: use a forgetting factor such as 0.95, or auto", l)
+			return o, fmt.Errorf("--lambda %q is not a number: give a forgetting factor such as 0.95, or leave --lambda out to choose it from the data", l)
 		}
 		o.spec.Lambda = v
 	}
@@ -514,16 +521,22 @@ func writeForecastTable(w io.Writer, o forecastOptions, out []seriesForecast) er
 			}
 			return strconv.FormatFloat(x, 'f', dec, 64)
 		}
-		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g, sigma %s\n",
+		chosen := ""
+		if o.autoLambda {
+			chosen = " (chosen from the data)"
+		}
+		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g%s, sigma %s\n",
 			displayKey(sf.key), sf.buckets, o.cal.Width(), o.cal.Zone(),
-			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, num(fc.Sigma))
+			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, chosen, num(fc.Sigma))
+		// The interval as a fan around the forecast, widest bounds outside;
+		// the running totals after a bar.
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(tw, "h\tperiod start\tforecast\t80% low\t80% high\t95% low\t95% high\tcumulative\tcum 95% low\tcum 95% high\t")
+		fmt.Fprintln(tw, strings.Join(forecastTableHeader, "\t")+"\t")
 		for i := range fc.Forecast {
 			start := o.cal.Start(sf.lastIdx + int64(i) + 1).Format(time.RFC3339)
-			fmt.Fprintf(tw, "%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n", i+1, start, num(fc.Forecast[i]),
-				num(fc.Lower80[i]), num(fc.Upper80[i]), num(fc.Lower95[i]), num(fc.Upper95[i]),
-				num(fc.CumForecast[i]), num(fc.CumLower95[i]), num(fc.CumUpper95[i]))
+			fmt.Fprintf(tw, "%d\t%s\t%s\t%s\t%s\t%s\t%s\t|\t%s\t%s\t%s\t\n", i+1, start,
+				num(fc.Lower95[i]), num(fc.Lower80[i]), num(fc.Forecast[i]), num(fc.Upper80[i]), num(fc.Upper95[i]),
+				num(fc.CumLower95[i]), num(fc.CumForecast[i]), num(fc.CumUpper95[i]))
 		}
 		if err := tw.Flush(); err != nil {
 			return err

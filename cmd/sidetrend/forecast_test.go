@@ -175,10 +175,11 @@ func TestForecastMatchesEstimator(t *testing.T) {
 		}
 	}
 
-	// --lambda auto chooses lambda per series exactly as SearchLambda does.
-	out, stderr, err := runForecast(t, "--csv", path, "--tz", "Europe/Berlin", "--lambda", "auto", "--horizon", "1", "--format", "csv")
+	// Without --lambda, lambda is chosen per series exactly as SearchLambda
+	// does.
+	out, stderr, err := runForecast(t, "--csv", path, "--tz", "Europe/Berlin", "--horizon", "1", "--format", "csv")
 	if err != nil {
-		t.Fatalf("forecast --lambda auto: %v\n%s", err, stderr)
+		t.Fatalf("forecast without --lambda: %v\n%s", err, stderr)
 	}
 	res, err := estimator.SearchLambda(spec, [][]float64{want["a"]}, estimator.SearchOptions{})
 	if err != nil {
@@ -196,7 +197,7 @@ func TestForecastMatchesEstimator(t *testing.T) {
 	}
 	recs := readCSVOutput(t, out)
 	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Forecast[0] {
-		t.Errorf("lambda auto: row %v, estimator forecast %v (lambda %v)", recs[1], fc.Forecast[0], res.Lambda)
+		t.Errorf("lambda chosen from the data: row %v, estimator forecast %v (lambda %v)", recs[1], fc.Forecast[0], res.Lambda)
 	}
 }
 
@@ -209,7 +210,7 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 	// lambda 0.95 the weight T = 1 + 0.95 is below p, so there is no
 	// residual variance and no interval. Series "one" has a single point.
 	body := "time,value,key\n2026-02-01,5,two\n2026-02-02,7,two\n2026-02-01,3,one\n"
-	out, stderr, err := runForecast(t, "--csv", writeFile(t, "few.csv", body), "--format", "json", "--horizon", "2")
+	out, stderr, err := runForecast(t, "--csv", writeFile(t, "few.csv", body), "--lambda", "0.95", "--format", "json", "--horizon", "2")
 	if err != nil {
 		t.Fatalf("forecast: %v\n%s", err, stderr)
 	}
@@ -245,7 +246,7 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 		}
 	}
 	// CSV prints undefined bounds as empty fields.
-	out, _, err = runForecast(t, "--csv", writeFile(t, "few.csv", body), "--format", "csv", "--horizon", "1")
+	out, _, err = runForecast(t, "--csv", writeFile(t, "few.csv", body), "--lambda", "0.95", "--format", "csv", "--horizon", "1")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -270,6 +271,37 @@ func TestForecastTable(t *testing.T) {
 		if !strings.Contains(out, want) {
 			t.Errorf("table does not contain %q:\n%s", want, out)
 		}
+	}
+	// The header: steps ahead, the bucket, the fan of bounds around the
+	// forecast (95 % outside, 80 % inside), a bar, then the running totals;
+	// every row has its numbers in that order and the bar in its column.
+	var header string
+	for i, l := range lines {
+		if strings.HasPrefix(l, "series ") {
+			header = lines[i+1]
+			row := strings.Fields(lines[i+2])
+			if len(row) != len(forecastTableHeader) || row[0] != "1" || row[7] != "|" {
+				t.Fatalf("first row %q, want %d fields with the bar in column 8", lines[i+2], len(forecastTableHeader))
+			}
+			var v [10]float64
+			for j, k := range []int{2, 3, 4, 5, 6, 8, 9, 10} {
+				v[j] = parseNum(t, row[k])
+			}
+			if !(v[0] < v[1] && v[1] < v[2] && v[2] < v[3] && v[3] < v[4]) {
+				t.Errorf("row %v: bounds are not a fan lower95 < lower80 < forecast < upper80 < upper95", row)
+			}
+			if !(v[5] < v[6] && v[6] < v[7]) || v[6] != v[2] {
+				t.Errorf("row %v: cumulative columns are not cum_lower95 < cum_forecast < cum_upper95 with cum_forecast = forecast at step 1", row)
+			}
+			break
+		}
+	}
+	if got := strings.Fields(header); !slices.Equal(got, []string{"ahead", "period", "start", "lower95", "lower80", "forecast", "upper80", "upper95",
+		"|", "cum_lower95", "cum_forecast", "cum_upper95"}) {
+		t.Errorf("header %q", header)
+	}
+	if header != strings.ToLower(header) {
+		t.Errorf("header %q is not lower case", header)
 	}
 }
 
@@ -297,7 +329,8 @@ func TestForecastBadInput(t *testing.T) {
 		{"bad zone", good, []string{"--tz", "CET"}, []string{"--tz", "Europe/Berlin"}},
 		{"bad agg", good, []string{"--agg", "median"}, []string{"--agg", "sum, mean"}},
 		{"bad empty", good, []string{"--empty", "skip"}, []string{"--empty", "zero", "gap"}},
-		{"bad lambda", good, []string{"--lambda", "high"}, []string{"--lambda", "0.95, or auto"}},
+		{"bad lambda", good, []string{"--lambda", "high"}, []string{"--lambda", "0.95", "leave --lambda out"}},
+		{"lambda auto is gone", good, []string{"--lambda", "auto"}, []string{`--lambda "auto" is not a number`, "leave --lambda out"}},
 		{"lambda out of range", good, []string{"--lambda", "1.3"}, []string{"lambda 1.3", "(0, 1]"}},
 		{"period without harmonics", good, []string{"--period", "7"}, []string{"--harmonics", "1 to 3"}},
 		{"bad format", good, []string{"--format", "xml"}, []string{"--format", "table, csv or json"}},
