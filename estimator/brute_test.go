@@ -87,12 +87,12 @@ func (bf *bruteFit) sigma() float64 {
 	return math.Sqrt(bf.s / (bf.t - float64(bf.p)))
 }
 
-// forecast returns yhat_l, SE_l, the cumulative sums and their SE for
+// forecast returns forecast_l, SE_l, the cumulative sums and their SE for
 // l = 1..h from the formulas in forecast.go's doc comments:
 //
 //	SE_l    = sigma sqrt(1 + f(l)^T F^-1 f(l))
 //	CumSE_l = sigma sqrt(l + c_l^T F^-1 c_l),  c_l = sum_{k<=l} f(k)
-func (bf *bruteFit) forecast(h int) (yhat, se, cum, cumSE []float64) {
+func (bf *bruteFit) forecast(h int) (forecast, se, cum, cumSE []float64) {
 	f := make([]float64, bf.p)
 	c := make([]float64, bf.p)
 	sigma := bf.sigma()
@@ -104,7 +104,7 @@ func (bf *bruteFit) forecast(h int) (yhat, se, cum, cumSE []float64) {
 		for i := range c {
 			c[i] += f[i]
 		}
-		yhat = append(yhat, y)
+		forecast = append(forecast, y)
 		se = append(se, sigma*math.Sqrt(1+bf.quad(f)))
 		cum = append(cum, sum)
 		cumSE = append(cumSE, sigma*math.Sqrt(float64(l)+bf.quad(c)))
@@ -267,7 +267,7 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 				// The one-step forecast issued at bucket n-1 for bucket n,
 				// held to the tolerances of that bucket.
 				yh, se, _, _ := prev.forecast(1)
-				near("step yhat", n, step.Yhat, yh[0], prevRelFit, rel*scale)
+				near("step forecast", n, step.Forecast, yh[0], prevRelFit, rel*scale)
 				near("step err", n, step.Err, y-yh[0], prevRelFit, rel*scale)
 				if prev.t > float64(p) {
 					near("step SE", n, step.SE, se[0], prevRelS, rel*scale)
@@ -342,9 +342,9 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 		for l := 0; l < h; l++ {
 			// Cumulative values sum l+1 forecasts: the floor grows with l.
 			cabs := abs * float64(l+1)
-			near(fmt.Sprintf("yhat[%d]", l+1), n, fc.Yhat[l], yh[l], relFit, abs)
+			near(fmt.Sprintf("forecast[%d]", l+1), n, fc.Forecast[l], yh[l], relFit, abs)
 			near(fmt.Sprintf("SE[%d]", l+1), n, fc.SE[l], se[l], relS, abs)
-			near(fmt.Sprintf("cum[%d]", l+1), n, fc.CumYhat[l], cum[l], relFit, cabs)
+			near(fmt.Sprintf("cum[%d]", l+1), n, fc.CumForecast[l], cum[l], relFit, cabs)
 			near(fmt.Sprintf("cumSE[%d]", l+1), n, fc.CumSE[l], cumSE[l], relS, cabs)
 			if math.IsNaN(fc.T95) {
 				// No interval: T - p is below the 0.0065 where the t
@@ -352,9 +352,9 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 				continue
 			}
 			// Interval widths: twice the t quantile times SE.
-			near(fmt.Sprintf("Hi80-Lo80[%d]", l+1), n, fc.Hi80[l]-fc.Lo80[l], 2*fc.T80*se[l], relS, abs)
-			near(fmt.Sprintf("Hi95-Lo95[%d]", l+1), n, fc.Hi95[l]-fc.Lo95[l], 2*fc.T95*se[l], relS, abs)
-			near(fmt.Sprintf("CumHi95-CumLo95[%d]", l+1), n, fc.CumHi95[l]-fc.CumLo95[l], 2*fc.T95*cumSE[l], relS, cabs)
+			near(fmt.Sprintf("Upper80-Lower80[%d]", l+1), n, fc.Upper80[l]-fc.Lower80[l], 2*fc.T80*se[l], relS, abs)
+			near(fmt.Sprintf("Upper95-Lower95[%d]", l+1), n, fc.Upper95[l]-fc.Lower95[l], 2*fc.T95*se[l], relS, abs)
+			near(fmt.Sprintf("CumUpper95-CumLower95[%d]", l+1), n, fc.CumUpper95[l]-fc.CumLower95[l], 2*fc.T95*cumSE[l], relS, cabs)
 		}
 		if math.IsNaN(fc.T95) && fc.DF >= 0.0065 {
 			t.Errorf("N=%d no interval at T - p = %v", n, fc.DF)

@@ -101,7 +101,7 @@ func TestSteadyStateGain(t *testing.T) {
 				if err != nil {
 					t.Fatal(err)
 				}
-				step, err := st.Observe(fc.Yhat[0] + 1000)
+				step, err := st.Observe(fc.Forecast[0] + 1000)
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -134,11 +134,11 @@ func TestSteadyStateGain(t *testing.T) {
 //   - local linear trend = Holt's linear method with alpha = 1 - lambda^2,
 //     beta = (1 - lambda)/(1 + lambda) (Holt 1957; FPP3 section 8.2):
 //     l_t = alpha y_t + (1 - alpha)(l_{t-1} + b_{t-1}),
-//     b_t = beta (l_t - l_{t-1}) + (1 - beta) b_{t-1},  yhat_{t+m} = l_t + m b_t
+//     b_t = beta (l_t - l_{t-1}) + (1 - beta) b_{t-1},  forecast_{t+m} = l_t + m b_t
 //   - local linear trend = Brown's double exponential smoothing with
 //     alpha = 1 - lambda (Brown 1963): S1_t = alpha y_t + (1 - alpha) S1_{t-1},
 //     S2_t = alpha S1_t + (1 - alpha) S2_{t-1}, a = 2 S1 - S2,
-//     b = alpha/(1 - alpha) (S1 - S2), yhat_{t+m} = a + m b.
+//     b = alpha/(1 - alpha) (S1 - S2), forecast_{t+m} = a + m b.
 //
 // Tolerance 1e-9 relative with a floor of 1e-9 times the data scale: the
 // smoothers and the state round differently, and the difference of
@@ -197,14 +197,14 @@ func TestSteadyStateSmoothers(t *testing.T) {
 				if err != nil {
 					t.Fatal(err)
 				}
-				if !scalar.EqualWithinAbsOrRel(st0.Yhat, sesL, abs, rel) {
-					t.Errorf("step %d: constant mean yhat %.17g, SES %.17g", i, st0.Yhat, sesL)
+				if !scalar.EqualWithinAbsOrRel(st0.Forecast, sesL, abs, rel) {
+					t.Errorf("step %d: constant mean forecast %.17g, SES %.17g", i, st0.Forecast, sesL)
 				}
-				if want := holtL + holtB; !scalar.EqualWithinAbsOrRel(st1.Yhat, want, abs, rel) {
-					t.Errorf("step %d: linear trend yhat %.17g, Holt %.17g", i, st1.Yhat, want)
+				if want := holtL + holtB; !scalar.EqualWithinAbsOrRel(st1.Forecast, want, abs, rel) {
+					t.Errorf("step %d: linear trend forecast %.17g, Holt %.17g", i, st1.Forecast, want)
 				}
-				if want := 2*s1 - s2 + alpha/(1-alpha)*(s1-s2); !scalar.EqualWithinAbsOrRel(st1.Yhat, want, abs, rel) {
-					t.Errorf("step %d: linear trend yhat %.17g, Brown %.17g", i, st1.Yhat, want)
+				if want := 2*s1 - s2 + alpha/(1-alpha)*(s1-s2); !scalar.EqualWithinAbsOrRel(st1.Forecast, want, abs, rel) {
+					t.Errorf("step %d: linear trend forecast %.17g, Brown %.17g", i, st1.Forecast, want)
 				}
 
 				sesL = alpha*y + (1-alpha)*sesL
@@ -224,14 +224,14 @@ func TestSteadyStateSmoothers(t *testing.T) {
 				}
 				a, b := 2*s1-s2, alpha/(1-alpha)*(s1-s2)
 				for m := 1; m <= h; m++ {
-					if !scalar.EqualWithinAbsOrRel(fc0.Yhat[m-1], sesL, abs, rel) {
-						t.Fatalf("step %d: constant mean yhat[%d] %.17g, SES %.17g", i, m, fc0.Yhat[m-1], sesL)
+					if !scalar.EqualWithinAbsOrRel(fc0.Forecast[m-1], sesL, abs, rel) {
+						t.Fatalf("step %d: constant mean forecast[%d] %.17g, SES %.17g", i, m, fc0.Forecast[m-1], sesL)
 					}
-					if want := holtL + float64(m)*holtB; !scalar.EqualWithinAbsOrRel(fc1.Yhat[m-1], want, abs, rel) {
-						t.Fatalf("step %d: linear trend yhat[%d] %.17g, Holt %.17g", i, m, fc1.Yhat[m-1], want)
+					if want := holtL + float64(m)*holtB; !scalar.EqualWithinAbsOrRel(fc1.Forecast[m-1], want, abs, rel) {
+						t.Fatalf("step %d: linear trend forecast[%d] %.17g, Holt %.17g", i, m, fc1.Forecast[m-1], want)
 					}
-					if want := a + float64(m)*b; !scalar.EqualWithinAbsOrRel(fc1.Yhat[m-1], want, abs, rel) {
-						t.Fatalf("step %d: linear trend yhat[%d] %.17g, Brown %.17g", i, m, fc1.Yhat[m-1], want)
+					if want := a + float64(m)*b; !scalar.EqualWithinAbsOrRel(fc1.Forecast[m-1], want, abs, rel) {
+						t.Fatalf("step %d: linear trend forecast[%d] %.17g, Brown %.17g", i, m, fc1.Forecast[m-1], want)
 					}
 				}
 			}

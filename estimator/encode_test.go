@@ -80,7 +80,7 @@ func answers(st *State) []float64 {
 		th, _ := st.Theta()
 		out = append(out, th...)
 		fc, _ := st.Forecast(12)
-		for _, s := range [][]float64{fc.Yhat, fc.SE, fc.Lo80, fc.Hi80, fc.Lo95, fc.Hi95, fc.CumYhat, fc.CumSE, fc.CumLo95, fc.CumHi95} {
+		for _, s := range [][]float64{fc.Forecast, fc.SE, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95, fc.CumForecast, fc.CumSE, fc.CumLower95, fc.CumUpper95} {
 			out = append(out, s...)
 		}
 		out = append(out, fc.Sigma, fc.DF, fc.T80, fc.T95)
@@ -242,13 +242,13 @@ func TestDecodeErrors(t *testing.T) {
 	})
 }
 
-// sameStep compares two steps bit for bit. Lo95/Hi95 may be NaN on one side
+// sameStep compares two steps bit for bit. Lower95/Upper95 may be NaN on one side
 // only: the decoded state starts with an empty quantile cache, and without
 // a cached quantile the interval bounds are left out for an actual inside
 // them (see Step).
 func sameStep(a, b Step) bool {
 	eq := func(x, y float64) bool { return math.Float64bits(x) == math.Float64bits(y) }
 	opt := func(x, y float64) bool { return math.IsNaN(x) || math.IsNaN(y) || eq(x, y) }
-	return a.Scored == b.Scored && eq(a.Yhat, b.Yhat) && eq(a.Err, b.Err) && eq(a.SE, b.SE) &&
-		a.In80 == b.In80 && a.In95 == b.In95 && opt(a.Lo95, b.Lo95) && opt(a.Hi95, b.Hi95)
+	return a.Scored == b.Scored && eq(a.Forecast, b.Forecast) && eq(a.Err, b.Err) && eq(a.SE, b.SE) &&
+		a.In80 == b.In80 && a.In95 == b.In95 && opt(a.Lower95, b.Lower95) && opt(a.Upper95, b.Upper95)
 }

@@ -12,22 +12,22 @@ const MaxHorizon = 100000
 // every slice. Interval bounds are NaN while T - p <= 0 (no residual degrees
 // of freedom yet) or is too small for a finite t quantile (below about 0.0065).
 type Forecast struct {
-	Yhat       []float64 // f(l)^T theta_N
-	SE         []float64 // sigma sqrt(1 + f(l)^T F^-1 f(l))
-	Lo80, Hi80 []float64 // yhat -+ t_{0.10}(T - p) SE
-	Lo95, Hi95 []float64 // yhat -+ t_{0.025}(T - p) SE
+	Forecast         []float64 // f(l)^T theta_N
+	SE               []float64 // sigma sqrt(1 + f(l)^T F^-1 f(l))
+	Lower80, Upper80 []float64 // forecast -+ t_{0.10}(T - p) SE
+	Lower95, Upper95 []float64 // forecast -+ t_{0.025}(T - p) SE
 
-	// Cumulative forecast of the next l buckets, sum_{k<=l} yhat_k, with
+	// Cumulative forecast of the next l buckets, sum_{k<=l} forecast_k, with
 	// standard error sigma sqrt(l + c_l^T F^-1 c_l), c_l = sum_{k<=l} f(k).
-	CumYhat, CumSE      []float64
-	CumLo95, CumHi95    []float64
-	Sigma, DF, T80, T95 float64
+	CumForecast, CumSE     []float64
+	CumLower95, CumUpper95 []float64
+	Sigma, DF, T80, T95    float64
 }
 
 // Forecast returns forecasts and intervals for l = 1..h:
 //
-//	yhat_{N+l|N} = f(l)^T theta_N
-//	yhat -+ t_{alpha/2}(T - p) sigma sqrt(1 + f(l)^T F^-1 f(l))
+//	forecast_{N+l|N} = f(l)^T theta_N
+//	forecast -+ t_{alpha/2}(T - p) sigma sqrt(1 + f(l)^T F^-1 f(l))
 //
 // the prediction interval of discounted least squares under independent
 // errors of constant variance, with sigma^2 = S / (T - p).
@@ -46,8 +46,8 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 		return s
 	}
 	fc := &Forecast{
-		Yhat: take(), SE: take(), Lo80: take(), Hi80: take(), Lo95: take(), Hi95: take(),
-		CumYhat: take(), CumSE: take(), CumLo95: take(), CumHi95: take(),
+		Forecast: take(), SE: take(), Lower80: take(), Upper80: take(), Lower95: take(), Upper95: take(),
+		CumForecast: take(), CumSE: take(), CumLower95: take(), CumUpper95: take(),
 	}
 	fc.DF = st.DF()
 	fc.Sigma = st.Sigma()
@@ -77,12 +77,12 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 		}
 		cumY += y
 		i := l - 1
-		fc.Yhat[i], fc.CumYhat[i] = y, cumY
+		fc.Forecast[i], fc.CumForecast[i] = y, cumY
 		fc.SE[i] = fc.Sigma * math.Sqrt(1+st.quadForm(fl))
 		fc.CumSE[i] = fc.Sigma * math.Sqrt(float64(l)+st.quadForm(cum))
-		fc.Lo80[i], fc.Hi80[i] = y-fc.T80*fc.SE[i], y+fc.T80*fc.SE[i]
-		fc.Lo95[i], fc.Hi95[i] = y-fc.T95*fc.SE[i], y+fc.T95*fc.SE[i]
-		fc.CumLo95[i], fc.CumHi95[i] = cumY-fc.T95*fc.CumSE[i], cumY+fc.T95*fc.CumSE[i]
+		fc.Lower80[i], fc.Upper80[i] = y-fc.T80*fc.SE[i], y+fc.T80*fc.SE[i]
+		fc.Lower95[i], fc.Upper95[i] = y-fc.T95*fc.SE[i], y+fc.T95*fc.SE[i]
+		fc.CumLower95[i], fc.CumUpper95[i] = cumY-fc.T95*fc.CumSE[i], cumY+fc.T95*fc.CumSE[i]
 	}
 	return fc, nil
 }
@@ -129,7 +129,7 @@ func (st *State) Slope() (Slope, error) {
 	return sl, nil
 }
 
-// ErrorStats summarises the one-step prediction errors e = Y - yhat of the
+// ErrorStats summarises the one-step prediction errors e = Y - forecast of the
 // observations that arrived while the state was Ready (after burn-in).
 type ErrorStats struct {
 	N     int64   // scored one-step errors

@@ -173,8 +173,8 @@ func checkFinite(t *testing.T, st *State) {
 			}
 		}
 	}
-	bad("Yhat", fc.Yhat...)
-	bad("CumYhat", fc.CumYhat...)
+	bad("Forecast", fc.Forecast...)
+	bad("CumForecast", fc.CumForecast...)
 	th, err := st.Theta()
 	if err != nil {
 		t.Fatalf("Ready state: Theta: %v", err)
@@ -199,10 +199,10 @@ func checkFinite(t *testing.T, st *State) {
 		return
 	}
 	bad("T80, T95", fc.T80, fc.T95)
-	bad("Lo80", fc.Lo80...)
-	bad("Hi80", fc.Hi80...)
-	bad("Lo95", fc.Lo95...)
-	bad("Hi95", fc.Hi95...)
-	bad("CumLo95", fc.CumLo95...)
-	bad("CumHi95", fc.CumHi95...)
+	bad("Lower80", fc.Lower80...)
+	bad("Upper80", fc.Upper80...)
+	bad("Lower95", fc.Lower95...)
+	bad("Upper95", fc.Upper95...)
+	bad("CumLower95", fc.CumLower95...)
+	bad("CumUpper95", fc.CumUpper95...)
 }

@@ -144,7 +144,7 @@ func TestReferenceR(t *testing.T) {
 			}
 			h := 0
 			for k := range c.want {
-				if k.quantity == "yhat" {
+				if k.quantity == "forecast" {
 					h = max(h, k.index)
 				}
 			}
@@ -169,12 +169,12 @@ func TestReferenceR(t *testing.T) {
 					got, floor = theta[k.index-1], abs/colScale(c.spec, k.index-1)
 				case "slope_se":
 					got, floor = sl.SE, abs/colScale(c.spec, 1)
-				case "yhat":
-					got, floor = fc.Yhat[k.index-1], abs
+				case "forecast":
+					got, floor = fc.Forecast[k.index-1], abs
 				case "se":
 					got, floor = fc.SE[k.index-1], abs
 				case "cum":
-					got, floor = fc.CumYhat[k.index-1], abs*float64(k.index)
+					got, floor = fc.CumForecast[k.index-1], abs*float64(k.index)
 				case "cum_se":
 					got, floor = fc.CumSE[k.index-1], abs*float64(k.index)
 				default:

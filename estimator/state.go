@@ -85,7 +85,7 @@ type State struct {
 	tq   quantileCache
 }
 
-// errorSums accumulates one-step prediction errors e = Y - yhat, scored only
+// errorSums accumulates one-step prediction errors e = Y - forecast, scored only
 // for observations that arrive while the state is Ready.
 type errorSums struct {
 	n       int64   // scored errors
@@ -126,7 +126,7 @@ func (st *State) score(step *Step, e, df float64) {
 	c := &st.tq
 	for _, q := range c.slot {
 		if q.t80 != 0 && q.df == df {
-			step.Lo95, step.Hi95 = step.Yhat-q.t95*step.SE, step.Yhat+q.t95*step.SE
+			step.Lower95, step.Upper95 = step.Forecast-q.t95*step.SE, step.Forecast+q.t95*step.SE
 			step.In80, step.In95 = math.Abs(e) <= q.t80*step.SE, math.Abs(e) <= q.t95*step.SE
 			return
 		}
@@ -150,7 +150,7 @@ func (st *State) score(step *Step, e, df float64) {
 	}
 	if !step.In95 {
 		if _, t95 := studentQuantiles(df); finite(t95) {
-			step.Lo95, step.Hi95 = step.Yhat-t95*step.SE, step.Yhat+t95*step.SE
+			step.Lower95, step.Upper95 = step.Forecast-t95*step.SE, step.Forecast+t95*step.SE
 		}
 	}
 }
@@ -372,18 +372,18 @@ func (st *State) Sigma() float64 {
 // Step tells what one observation did: whether it was scored against the
 // forecast issued one bucket earlier and, if so, that forecast and its error.
 type Step struct {
-	Scored bool    // the state was Ready before the observation
-	Yhat   float64 // f(1)^T theta_old, the one-step forecast
-	Err    float64 // Y - Yhat
-	SE     float64 // standard error of the one-step forecast, NaN if T - p <= 0
-	// Lo95, Hi95 is the 95 % interval issued one step earlier. It is always
+	Scored   bool    // the state was Ready before the observation
+	Forecast float64 // f(1)^T theta_old, the one-step forecast
+	Err      float64 // Y - Forecast
+	SE       float64 // standard error of the one-step forecast, NaN if T - p <= 0
+	// Lower95, Upper95 is the 95 % interval issued one step earlier. It is always
 	// filled when Y fell outside it; while T is still changing (the first
 	// few hundred steps) it may be NaN for a Y inside it: In80 and In95 are
 	// then decided from the t distribution function (see score).
-	Lo95 float64
-	Hi95 float64
-	In80 bool // Y inside the 80 % interval (false when there was none)
-	In95 bool
+	Lower95 float64
+	Upper95 float64
+	In80    bool // Y inside the 80 % interval (false when there was none)
+	In95    bool
 }
 
 // Observe advances the state by one bucket that has the value y. NaN, Inf or
@@ -399,15 +399,15 @@ func (st *State) Observe(y float64) (Step, error) {
 	ready := st.Ready()
 	var e, q float64
 	if st.pd {
-		step.Yhat = dot(st.f1, st.theta)
-		e = y - step.Yhat
+		step.Forecast = dot(st.f1, st.theta)
+		e = y - step.Forecast
 		q = st.quadForm(st.f1) / lam
 	}
 	if ready {
 		step.Scored, step.Err = true, e
-		step.SE, step.Lo95, step.Hi95 = math.NaN(), math.NaN(), math.NaN()
+		step.SE, step.Lower95, step.Upper95 = math.NaN(), math.NaN(), math.NaN()
 		if df := st.DF(); df > 0 {
-			// Var(Y - yhat) = sigma^2 (1 + f(1)^T F^-1 f(1)).
+			// Var(Y - forecast) = sigma^2 (1 + f(1)^T F^-1 f(1)).
 			step.SE = math.Sqrt(st.s/df) * math.Sqrt(1+lam*q)
 			st.score(&step, e, df)
 		}

@@ -112,8 +112,8 @@ func sameFloat(a, b float64) bool { return a == b || math.IsNaN(a) && math.IsNaN
 
 func stepsAgree(a, b Step) bool {
 	return a.Scored == b.Scored && a.In80 == b.In80 && a.In95 == b.In95 &&
-		sameFloat(a.Yhat, b.Yhat) && sameFloat(a.Err, b.Err) && sameFloat(a.SE, b.SE) &&
-		sameFloat(a.Lo95, b.Lo95) && sameFloat(a.Hi95, b.Hi95)
+		sameFloat(a.Forecast, b.Forecast) && sameFloat(a.Err, b.Err) && sameFloat(a.SE, b.SE) &&
+		sameFloat(a.Lower95, b.Lower95) && sameFloat(a.Upper95, b.Upper95)
 }
 
 // diffStates describes the first difference between the statistics and

@@ -191,12 +191,12 @@ func TestBudgetRecipes(t *testing.T) {
 				w.state, w.proj, w.lo, w.hi, w.fcRest = "closed", w.actual, w.actual, w.actual, 0
 			case folded+1 >= pr.first && h <= horizon:
 				w.state = "current"
-				w.fcRest = fc.CumYhat[h-1]
+				w.fcRest = fc.CumForecast[h-1]
 				w.proj = w.actual + w.fcRest
-				w.lo, w.hi = w.actual+fc.CumLo95[h-1], w.actual+fc.CumHi95[h-1]
+				w.lo, w.hi = w.actual+fc.CumLower95[h-1], w.actual+fc.CumUpper95[h-1]
 				// 1.959963984540054 = the 0.975 quantile of the standard
 				// normal, as in the recipe's header.
-				w.sd = (fc.CumHi95[h-1] - fc.CumLo95[h-1]) / (2 * 1.959963984540054)
+				w.sd = (fc.CumUpper95[h-1] - fc.CumLower95[h-1]) / (2 * 1.959963984540054)
 			case folded+1 >= pr.first:
 				w.state, w.note = "current", true
 				w.proj, w.lo, w.hi, w.sd, w.fcRest = math.NaN(), math.NaN(), math.NaN(), math.NaN(), math.NaN()
@@ -204,7 +204,7 @@ func TestBudgetRecipes(t *testing.T) {
 				w.state, w.note = "future", true
 				w.proj = 0
 				for l := pr.first - folded; l <= h; l++ {
-					w.proj += fc.Yhat[l-1]
+					w.proj += fc.Forecast[l-1]
 				}
 				w.lo, w.hi, w.sd, w.fcRest = math.NaN(), math.NaN(), math.NaN(), math.NaN()
 			}
@@ -244,7 +244,7 @@ func TestBudgetRecipes(t *testing.T) {
 	}
 
 	rs, err := pool.Query(ctx, `SELECT cost_centre, period, period_start::timestamp, state, buckets_observed, buckets_remaining,
-		actual_to_date, forecast_remaining, projected, lo95, hi95, sd, p_below_budget, note FROM budget_outlook`)
+		actual_to_date, forecast_remaining, projected, lower95, upper95, sd, p_below_budget, note FROM budget_outlook`)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -288,8 +288,8 @@ func TestBudgetRecipes(t *testing.T) {
 		near("actual_to_date", &actual, w.actual, 1e-9)
 		near("forecast_remaining", fcRest, w.fcRest, 1e-9)
 		near("projected", proj, w.proj, 1e-9)
-		near("lo95", lo, w.lo, 1e-9)
-		near("hi95", hi, w.hi, 1e-9)
+		near("lower95", lo, w.lo, 1e-9)
+		near("upper95", hi, w.hi, 1e-9)
 		near("sd", sd, w.sd, 1e-9)
 		// Absolute 1e-9 on a probability: sidetrend.normal_cdf is good to
 		// about 1e-15, the rest is the inputs' last digits.
@@ -336,8 +336,8 @@ func TestBudgetRecipes(t *testing.T) {
 	rollup := strings.TrimRight(strings.TrimSpace(recipes["rollup"]), ";")
 	var n int
 	var gBudget, gProj, gSD, gLoI, gHiI, gLo, gHi, gP float64
-	if err := pool.QueryRow(ctx, `SELECT cost_centres, budget, projected, sd_independent, lo95_independent, hi95_independent,
-		lo95_sum_of_bounds, hi95_sum_of_bounds, p_below_budget_independent FROM (`+rollup+`) r
+	if err := pool.QueryRow(ctx, `SELECT cost_centres, budget, projected, sd_independent, lower95_independent, upper95_independent,
+		lower95_sum_of_bounds, upper95_sum_of_bounds, p_below_budget_independent FROM (`+rollup+`) r
 		WHERE tracker = 'fuel' AND period = 'month' AND period_start = '2026-03-01'`).
 		Scan(&n, &gBudget, &gProj, &gSD, &gLoI, &gHiI, &gLo, &gHi, &gP); err != nil {
 		t.Fatal(err)
@@ -347,8 +347,8 @@ func TestBudgetRecipes(t *testing.T) {
 		got, want float64
 	}{
 		{"budget", gBudget, wBudget}, {"projected", gProj, wProj}, {"sd_independent", gSD, wSD},
-		{"lo95_independent", gLoI, wProj - 1.959963984540054*wSD}, {"hi95_independent", gHiI, wProj + 1.959963984540054*wSD},
-		{"lo95_sum_of_bounds", gLo, wLo}, {"hi95_sum_of_bounds", gHi, wHi}, {"p_below_budget_independent", gP, wP},
+		{"lower95_independent", gLoI, wProj - 1.959963984540054*wSD}, {"upper95_independent", gHiI, wProj + 1.959963984540054*wSD},
+		{"lower95_sum_of_bounds", gLo, wLo}, {"upper95_sum_of_bounds", gHi, wHi}, {"p_below_budget_independent", gP, wP},
 	} {
 		if !scalar.EqualWithinAbsOrRel(c.got, c.want, 1e-9, 1e-9) {
 			t.Errorf("rollup of March %s = %v, want %v", c.name, c.got, c.want)

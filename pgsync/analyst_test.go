@@ -222,7 +222,7 @@ func TestHistoryAndAccuracyByHorizon(t *testing.T) {
 				continue // pruned
 			}
 			for l := 1; l <= horizon && issued+int64(l) <= last; l++ {
-				e := s.ys[i+l] - fc.Yhat[l-1]
+				e := s.ys[i+l] - fc.Forecast[l-1]
 				a := want[key][l]
 				if a == nil {
 					a = &acc{}
@@ -231,9 +231,9 @@ func TestHistoryAndAccuracyByHorizon(t *testing.T) {
 				a.n++
 				a.abs += math.Abs(e)
 				a.sq += e * e
-				if !math.IsNaN(fc.Lo95[l-1]) {
+				if !math.IsNaN(fc.Lower95[l-1]) {
 					a.nInt++
-					if s.ys[i+l] >= fc.Lo95[l-1] && s.ys[i+l] <= fc.Hi95[l-1] {
+					if s.ys[i+l] >= fc.Lower95[l-1] && s.ys[i+l] <= fc.Upper95[l-1] {
 						a.in95++
 					}
 				}
@@ -266,8 +266,8 @@ func TestHistoryAndAccuracyByHorizon(t *testing.T) {
 		t.Fatal(err)
 	}
 	again := all[len(all)-1]
-	again.Yhat = append([]float64(nil), again.Yhat...)
-	again.Yhat[0] += 1000
+	again.Forecast = append([]float64(nil), again.Forecast...)
+	again.Forecast[0] += 1000
 	if err := RecordHistory(ctx, tx, []IssuedForecast{again}); err != nil {
 		t.Fatal(err)
 	}
@@ -279,27 +279,30 @@ func TestHistoryAndAccuracyByHorizon(t *testing.T) {
 		s := series[key]
 		last := s.first + int64(len(s.ys)) - 1
 		var lo, hi, n int64
-		if err := pool.QueryRow(ctx, `SELECT min(issued_for), max(issued_for), count(*) FROM sidetrend.forecast_history
-			WHERE tracker_id = $1 AND series_key = $2`, tid, key).Scan(&lo, &hi, &n); err != nil {
+		if err := pool.QueryRow(ctx, `SELECT min(i.issued_for), max(i.issued_for), count(*) FROM sidetrend.forecast_issues i
+			CROSS JOIN LATERAL unnest(i.forecast) AS f WHERE i.tracker_id = $1 AND i.series_key = $2`, tid, key).Scan(&lo, &hi, &n); err != nil {
 			t.Fatal(err)
 		}
 		if lo != last-keep+1 || hi != last || n != keep*horizon {
 			t.Errorf("series %q keeps issues %d..%d (%d rows), want %d..%d (%d rows)", key, lo, hi, n, last-keep+1, last, keep*horizon)
 		}
 	}
-	var yhat1 float64
-	if err := pool.QueryRow(ctx, `SELECT yhat FROM sidetrend.forecast_history WHERE tracker_id = $1 AND series_key = $2
-		AND issued_for = $3 AND horizon = 1`, tid, again.SeriesKey, again.IssuedFor).Scan(&yhat1); err != nil {
+	var forecast1 float64
+	if err := pool.QueryRow(ctx, `SELECT forecast FROM sidetrend.forecast_history WHERE tracker_id = $1 AND series_key = $2
+		AND issued_for = TIMESTAMPTZ '2001-01-01 00:00Z' + $3 * interval '1 day' AND horizon = 1`, tid, again.SeriesKey, again.IssuedFor).Scan(&forecast1); err != nil {
 		t.Fatal(err)
 	}
-	if yhat1 != all[len(all)-1].Yhat[0] {
-		t.Errorf("a second record of issue %d rewrote yhat to %v", again.IssuedFor, yhat1)
+	if forecast1 != all[len(all)-1].Forecast[0] {
+		t.Errorf("a second record of issue %d rewrote forecast to %v", again.IssuedFor, forecast1)
 	}
-	// period_start is the start of bucket issued_for + horizon.
+	// issued_for is the start of the issue bucket and period_start the
+	// start of the bucket horizon buckets later; tracker is the name.
 	var bad int
 	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.forecast_history h
-		WHERE h.period_start <> TIMESTAMPTZ '2001-01-01 00:00Z' + (h.issued_for + h.horizon) * interval '1 day'`).Scan(&bad); err != nil || bad != 0 {
-		t.Errorf("%d history rows with a period_start that is not their bucket's start (err %v)", bad, err)
+		WHERE h.period_start <> h.issued_for + h.horizon * interval '1 day'
+		   OR extract(epoch FROM h.issued_for - TIMESTAMPTZ '2001-01-01 00:00Z') % 86400 <> 0
+		   OR h.tracker IS DISTINCT FROM 'sales'`).Scan(&bad); err != nil || bad != 0 {
+		t.Errorf("%d history rows with an issued_for or period_start that is not a bucket's start, or another tracker name (err %v)", bad, err)
 	}
 
 	rows, err := pool.Query(ctx, `SELECT series_key, horizon, n, mae, rmse, coverage95 FROM sidetrend.accuracy_by_horizon
@@ -363,7 +366,7 @@ func TestHistoryOff(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer tx.Rollback(ctx)
-	f := IssuedForecast{TrackerID: tid, SeriesKey: "a", IssuedFor: 9000, Yhat: []float64{1, 2}, SE: []float64{0.5, math.NaN()}, T95: 2}
+	f := IssuedForecast{TrackerID: tid, SeriesKey: "a", IssuedFor: 9000, Forecast: []float64{1, 2}, SE: []float64{0.5, math.NaN()}, T95: 2}
 	if err := RecordHistory(ctx, tx, []IssuedForecast{f}); err != nil {
 		t.Fatal(err)
 	}
@@ -458,7 +461,7 @@ func TestSurpriseWatch(t *testing.T) {
 		}
 		rs, _ := ref.Observe(y)
 		w.Observed(int64(i), y, step, st)
-		if i > 9 && rs.Scored && !math.IsNaN(rs.Lo95) && !rs.In95 {
+		if i > 9 && rs.Scored && !math.IsNaN(rs.Lower95) && !rs.In95 {
 			wantOut = append(wantOut, int64(i))
 		}
 		if sl, err := ref.Slope(); err == nil {
@@ -475,7 +478,7 @@ func TestSurpriseWatch(t *testing.T) {
 		switch e.Kind {
 		case SurpriseOutside95:
 			gotOut = append(gotOut, e.Bucket)
-			if !(e.Actual < e.Lo95 || e.Actual > e.Hi95) || math.Abs(e.Z) < 1.9 {
+			if !(e.Actual < e.Lower95 || e.Actual > e.Upper95) || math.Abs(e.Z) < 1.9 {
 				t.Errorf("outside95 event %+v is not outside its interval", e)
 			}
 		case SurpriseSlopeTurn:
@@ -534,10 +537,10 @@ func TestRecordSurprises(t *testing.T) {
 	for i := 0; i < 60; i++ {
 		key := fmt.Sprintf("%03d-", i) + strings.Repeat("x", 296)
 		evs = append(evs, Surprise{TrackerID: tid, SeriesKey: key, Bucket: 9000 + int64(i), Kind: SurpriseOutside95,
-			Actual: 10, Yhat: 5, Lo95: 6, Hi95: 8, Z: 4, Slope: math.NaN(), SlopeT: math.NaN()})
+			Actual: 10, Forecast: 5, Lower95: 6, Upper95: 8, Z: 4, Slope: math.NaN(), SlopeT: math.NaN()})
 	}
 	evs = append(evs, Surprise{TrackerID: tid, SeriesKey: strings.Repeat("y", 9000), Bucket: 9100, Kind: SurpriseSlopeTurn,
-		Actual: 3, Yhat: math.NaN(), Lo95: math.NaN(), Hi95: math.NaN(), Z: -2.5, Slope: -0.3, SlopeT: -2.5, Direction: "down"})
+		Actual: 3, Forecast: math.NaN(), Lower95: math.NaN(), Upper95: math.NaN(), Z: -2.5, Slope: -0.3, SlopeT: -2.5, Direction: "down"})
 	record := func(evs []Surprise, commit bool) {
 		t.Helper()
 		tx, err := pool.Begin(ctx)
@@ -596,16 +599,16 @@ func TestRecordSurprises(t *testing.T) {
 		t.Errorf("%d surprises from %v; want %d from bucket 9000's day", n, start, len(evs))
 	}
 	var turn struct {
-		dir      string
-		slopeT   float64
-		yhatNull bool
+		dir          string
+		slopeT       float64
+		forecastNull bool
 	}
-	if err := pool.QueryRow(ctx, `SELECT direction, slope_t, yhat IS NULL FROM sidetrend.surprises WHERE kind = 'slope_turn'`).
-		Scan(&turn.dir, &turn.slopeT, &turn.yhatNull); err != nil {
+	if err := pool.QueryRow(ctx, `SELECT direction, slope_t, forecast IS NULL FROM sidetrend.surprises WHERE kind = 'slope_turn'`).
+		Scan(&turn.dir, &turn.slopeT, &turn.forecastNull); err != nil {
 		t.Fatal(err)
 	}
-	if turn.dir != "down" || turn.slopeT != -2.5 || !turn.yhatNull {
-		t.Errorf("slope_turn row %+v, want down, -2.5, NULL yhat", turn)
+	if turn.dir != "down" || turn.slopeT != -2.5 || !turn.forecastNull {
+		t.Errorf("slope_turn row %+v, want down, -2.5, NULL forecast", turn)
 	}
 
 	// Again, and a rolled-back new one: no notification. A marker event
@@ -613,7 +616,7 @@ func TestRecordSurprises(t *testing.T) {
 	record(evs[:5], true)
 	record([]Surprise{{TrackerID: tid, SeriesKey: "rolled back", Bucket: 1, Kind: SurpriseOutside95}}, false)
 	record([]Surprise{{TrackerID: tid, SeriesKey: "marker", Bucket: 1, Kind: SurpriseOutside95,
-		Actual: math.NaN(), Yhat: math.NaN(), Lo95: math.NaN(), Hi95: math.NaN(), Z: math.NaN(), Slope: math.NaN(), SlopeT: math.NaN()}}, true)
+		Actual: math.NaN(), Forecast: math.NaN(), Lower95: math.NaN(), Upper95: math.NaN(), Z: math.NaN(), Slope: math.NaN(), SlopeT: math.NaN()}}, true)
 	wait, cancel := context.WithTimeout(ctx, 10*time.Second)
 	defer cancel()
 	note, err := listener.WaitForNotification(wait)
@@ -756,8 +759,8 @@ func TestAlertRecipes(t *testing.T) {
 	}
 	nan := math.NaN()
 	if err := RecordSurprises(ctx, tx, []Surprise{
-		{TrackerID: tid, SeriesKey: "shop 1", Bucket: 9200, Kind: SurpriseOutside95, Actual: 90, Yhat: 60, Lo95: 52, Hi95: 68, Z: 7.4, Slope: nan, SlopeT: nan},
-		{TrackerID: tid, SeriesKey: "shop 2", Bucket: 9200, Kind: SurpriseSlopeTurn, Actual: 55, Yhat: nan, Lo95: nan, Hi95: nan, Z: -2.2, Slope: -0.4, SlopeT: -2.2, Direction: "down"},
+		{TrackerID: tid, SeriesKey: "shop 1", Bucket: 9200, Kind: SurpriseOutside95, Actual: 90, Forecast: 60, Lower95: 52, Upper95: 68, Z: 7.4, Slope: nan, SlopeT: nan},
+		{TrackerID: tid, SeriesKey: "shop 2", Bucket: 9200, Kind: SurpriseSlopeTurn, Actual: 55, Forecast: nan, Lower95: nan, Upper95: nan, Z: -2.2, Slope: -0.4, SlopeT: -2.2, Direction: "down"},
 	}); err != nil {
 		t.Fatal(err)
 	}

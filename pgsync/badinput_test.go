@@ -122,12 +122,12 @@ func TestBadInput(t *testing.T) {
 	if math.Abs(slope) > 1e-12 || dir != "flat" {
 		t.Errorf("constant series: slope %v (se %v) %s, want 0 and flat", slope, se, dir)
 	}
-	var yhat float64
-	if err := pool.QueryRow(ctx, `SELECT yhat FROM sidetrend.forecasts WHERE series_key = 'flat' AND horizon = 3`).Scan(&yhat); err != nil {
+	var forecast float64
+	if err := pool.QueryRow(ctx, `SELECT forecast FROM sidetrend.forecasts WHERE series_key = 'flat' AND horizon = 3`).Scan(&forecast); err != nil {
 		t.Fatal(err)
 	}
-	if math.Abs(yhat-7) > 1e-9 {
-		t.Errorf("constant series forecasts %v, want 7", yhat)
+	if math.Abs(forecast-7) > 1e-9 {
+		t.Errorf("constant series forecasts %v, want 7", forecast)
 	}
 	// Fewer points than parameters: warming, no forecast rows.
 	exec(t, pool, `INSERT INTO obs (at, k, v) VALUES ('2026-05-03 09:00Z', 'lonely', 3)`)
@@ -149,7 +149,7 @@ func seriesSnapshot(t *testing.T, ctx context.Context, pool *pgxpool.Pool) strin
 	t.Helper()
 	var out string
 	err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(series_key || '=' ||
-		encode(sha256(coalesce(state, ''::bytea) || convert_to(coalesce(yhat::text, ''), 'UTF8')), 'hex'), ',' ORDER BY series_key), '')
+		encode(sha256(coalesce(state, ''::bytea) || convert_to(coalesce(forecast::text, ''), 'UTF8')), 'hex'), ',' ORDER BY series_key), '')
 		FROM sidetrend.series`).Scan(&out)
 	if err != nil {
 		t.Fatal(err)

@@ -2,10 +2,10 @@ package pgsync
 
 // historyTailSQL is the statement tail that records served forecasts in
 // sidetrend.forecast_issues (read through the view sidetrend.forecast_history)
-// and prunes old ones, given a relation issued(tid, key, issued_for, yhat,
+// and prunes old ones, given a relation issued(tid, key, issued_for, forecast,
 // se, t95, prune) defined before it in a WITH list: writeSeriesSQL defines
 // it as the series update's RETURNING. The bounds are formed by the view,
-// yhat -+ t95 se.
+// forecast -+ t95 se.
 //
 // The insert keeps the first forecast served for a (series, issue bucket):
 // a replay that serves again at the same bucket does not rewrite what users
@@ -15,8 +15,8 @@ package pgsync
 // prune's statement does not see the row the insert adds, which is the
 // newest and never pruned.)
 const historyTailSQL = `, recorded AS (
-    INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, yhat, se, t95)
-    SELECT i.tid, i.key, i.issued_for, i.yhat, i.se, i.t95
+    INSERT INTO sidetrend.forecast_issues (tracker_id, series_key, issued_for, forecast, se, t95)
+    SELECT i.tid, i.key, i.issued_for, i.forecast, i.se, i.t95
     FROM issued i JOIN sidetrend.trackers t ON t.id = i.tid
     WHERE t.history_buckets > 0
     ON CONFLICT (tracker_id, series_key, issued_for) DO NOTHING

@@ -18,7 +18,7 @@ type IssuedForecast struct {
 	TrackerID int
 	SeriesKey string
 	IssuedFor int64
-	Yhat      []float64
+	Forecast  []float64
 	SE        []float64 // NaN while there is no interval
 	T95       float64
 }
@@ -26,7 +26,7 @@ type IssuedForecast struct {
 // ServedForecast is the IssuedForecast of a forecast just computed.
 func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Forecast) IssuedForecast {
 	return IssuedForecast{TrackerID: trackerID, SeriesKey: key, IssuedFor: issuedFor,
-		Yhat: fc.Yhat, SE: fc.SE, T95: fc.T95}
+		Forecast: fc.Forecast, SE: fc.SE, T95: fc.T95}
 }
 
 // recordHistorySQL feeds historyTailSQL, the drain's own insert and prune,
@@ -35,7 +35,7 @@ func ServedForecast(trackerID int, key string, issuedFor int64, fc *estimator.Fo
 var recordHistorySQL = `
 WITH issued AS (
     SELECT q.tid, q.key, q.issued_for,
-           array_replace(($6::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) AS yhat,
+           array_replace(($6::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) AS forecast,
            array_replace(($7::float8[])[q.off + 1 : q.off + q.h], 'NaN', NULL) AS se,
            nullif(q.t95, 'NaN') AS t95, true AS prune
     FROM unnest($1::int[], $2::text[], $3::bigint[], $4::int[], $5::int[], $8::float8[])
@@ -53,16 +53,16 @@ func RecordHistory(ctx context.Context, tx pgx.Tx, fcs []IssuedForecast) error {
 	tids, keys, issued := make([]int32, n), make([]string, n), make([]int64, n)
 	offs, hs, t95 := make([]int32, n), make([]int32, n), make([]float64, n)
 	// Never nil: a nil slice is sent as NULL, not as an empty array.
-	yhat, se := make([]float64, 0, len(fcs[0].Yhat)*n), make([]float64, 0, len(fcs[0].Yhat)*n)
+	forecast, se := make([]float64, 0, len(fcs[0].Forecast)*n), make([]float64, 0, len(fcs[0].Forecast)*n)
 	for i, f := range fcs {
-		if len(f.SE) != len(f.Yhat) {
-			return fmt.Errorf("record history of %q: %d forecasts but %d standard errors", f.SeriesKey, len(f.Yhat), len(f.SE))
+		if len(f.SE) != len(f.Forecast) {
+			return fmt.Errorf("record history of %q: %d forecasts but %d standard errors", f.SeriesKey, len(f.Forecast), len(f.SE))
 		}
 		tids[i], keys[i], issued[i] = int32(f.TrackerID), f.SeriesKey, f.IssuedFor
-		offs[i], hs[i], t95[i] = int32(len(yhat)), int32(len(f.Yhat)), finiteOrNaN(f.T95)
-		yhat, se = appendFinite(yhat, f.Yhat), appendFinite(se, f.SE)
+		offs[i], hs[i], t95[i] = int32(len(forecast)), int32(len(f.Forecast)), finiteOrNaN(f.T95)
+		forecast, se = appendFinite(forecast, f.Forecast), appendFinite(se, f.SE)
 	}
-	if _, err := tx.Exec(ctx, recordHistorySQL, tids, keys, issued, offs, hs, yhat, se, t95); err != nil {
+	if _, err := tx.Exec(ctx, recordHistorySQL, tids, keys, issued, offs, hs, forecast, se, t95); err != nil {
 		return fmt.Errorf("record forecast history: %w", err)
 	}
 	return nil

@@ -55,7 +55,7 @@ func TestThroughputMigrationDownUp(t *testing.T) {
 	bounds := func() string {
 		t.Helper()
 		var s string
-		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', horizon, yhat, lo80, hi80, lo95, hi95, cum_lo95, cum_hi95), '; ' ORDER BY horizon), '')
+		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', horizon, forecast, lower80, upper80, lower95, upper95, cum_lower95, cum_upper95), '; ' ORDER BY horizon), '')
 			FROM sidetrend.forecasts`).Scan(&s)
 		if err != nil {
 			t.Fatal(err)
@@ -105,11 +105,18 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 	exec(t, pool, `SELECT sidetrend.track('sales', 'at', 'v', horizon => 3)`)
 	exec(t, pool, `INSERT INTO sales SELECT '2026-01-01'::timestamptz + d * interval '1 day', d + (d % 3) FROM generate_series(0, 9) d`)
 	p := testMigrationProvider(t, url)
-	history := func() string {
+	// history reads the view at the newest version and, with old, as
+	// migrations 00006 and 00007 leave it, whose columns had the names
+	// that migration 00008 replaced: they are read by position there.
+	history := func(old ...bool) string {
 		t.Helper()
+		from := `(SELECT period_start, horizon, forecast, lower95, upper95 FROM sidetrend.forecast_history) h`
+		if len(old) > 0 && old[0] {
+			from = `sidetrend.forecast_history AS h(tracker_id, series_key, issued_for, horizon, period_start, forecast, lower95, upper95)`
+		}
 		var s string
-		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', issued_for, horizon, period_start, yhat, lo95, hi95), '; '
-			ORDER BY issued_for, horizon), '') FROM sidetrend.forecast_history`).Scan(&s)
+		err := pool.QueryRow(ctx, `SELECT coalesce(string_agg(concat_ws(' ', period_start, horizon, forecast, lower95, upper95), '; '
+			ORDER BY period_start - horizon * interval '1 day', horizon), '') FROM `+from).Scan(&s)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -131,7 +138,7 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 		if _, err := p.DownTo(ctx, 5); err != nil {
 			t.Fatalf("%s: down to 5: %v", when, err)
 		}
-		if got := history(); got != want {
+		if got := history(true); got != want {
 			t.Fatalf("history after Down (%s):\n%s\nwant:\n%s", when, got, want)
 		}
 		if _, err := p.Up(ctx); err != nil {
@@ -146,7 +153,7 @@ func TestHistorySEMigrationDownUp(t *testing.T) {
 		t.Fatal(err)
 	}
 	var stored, withSE int
-	if err := pool.QueryRow(ctx, `SELECT count(*) FILTER (WHERE se IS NULL AND lo95 IS NOT NULL), count(*) FILTER (WHERE se IS NOT NULL AND lo95 IS NULL)
+	if err := pool.QueryRow(ctx, `SELECT count(*) FILTER (WHERE se IS NULL AND lower95 IS NOT NULL), count(*) FILTER (WHERE se IS NOT NULL AND lower95 IS NULL)
 		FROM sidetrend.forecast_issues`).Scan(&stored, &withSE); err != nil {
 		t.Fatal(err)
 	}

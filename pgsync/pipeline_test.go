@@ -78,10 +78,10 @@ func offlineFit(t *testing.T, pool *pgxpool.Pool, table string, spec estimator.S
 }
 
 type viewRow struct {
-	key                          string
-	horizon                      int
-	yhat, lo80, hi80, lo95, hi95 *float64
-	cumYhat, cumLo95, cumHi95    *float64
+	key                                          string
+	horizon                                      int
+	forecast, lower80, upper80, lower95, upper95 *float64
+	cumForecast, cumLower95, cumUpper95          *float64
 }
 
 // compareForecasts checks the forecasts view against the offline fits,
@@ -91,7 +91,7 @@ type viewRow struct {
 func compareForecasts(t *testing.T, pool *pgxpool.Pool, tracker string, want map[string]*estimator.State, horizon int) {
 	t.Helper()
 	rows, err := pool.Query(context.Background(), `
-		SELECT series_key, horizon, yhat, lo80, hi80, lo95, hi95, cum_yhat, cum_lo95, cum_hi95
+		SELECT series_key, horizon, forecast, lower80, upper80, lower95, upper95, cum_forecast, cum_lower95, cum_upper95
 		FROM sidetrend.forecasts WHERE tracker = $1 ORDER BY series_key, horizon`, tracker)
 	if err != nil {
 		t.Fatal(err)
@@ -99,7 +99,7 @@ func compareForecasts(t *testing.T, pool *pgxpool.Pool, tracker string, want map
 	got := map[string][]viewRow{}
 	for rows.Next() {
 		var r viewRow
-		if err := rows.Scan(&r.key, &r.horizon, &r.yhat, &r.lo80, &r.hi80, &r.lo95, &r.hi95, &r.cumYhat, &r.cumLo95, &r.cumHi95); err != nil {
+		if err := rows.Scan(&r.key, &r.horizon, &r.forecast, &r.lower80, &r.upper80, &r.lower95, &r.upper95, &r.cumForecast, &r.cumLower95, &r.cumUpper95); err != nil {
 			t.Fatal(err)
 		}
 		got[r.key] = append(got[r.key], r)
@@ -135,14 +135,14 @@ func compareForecasts(t *testing.T, pool *pgxpool.Pool, tracker string, want map
 					t.Errorf("series %q h=%d %s = %v, want %v", key, i+1, name, deref2(g), w)
 				}
 			}
-			check("yhat", r.yhat, fc.Yhat[i])
-			check("lo80", r.lo80, fc.Lo80[i])
-			check("hi80", r.hi80, fc.Hi80[i])
-			check("lo95", r.lo95, fc.Lo95[i])
-			check("hi95", r.hi95, fc.Hi95[i])
-			check("cum_yhat", r.cumYhat, fc.CumYhat[i])
-			check("cum_lo95", r.cumLo95, fc.CumLo95[i])
-			check("cum_hi95", r.cumHi95, fc.CumHi95[i])
+			check("forecast", r.forecast, fc.Forecast[i])
+			check("lower80", r.lower80, fc.Lower80[i])
+			check("upper80", r.upper80, fc.Upper80[i])
+			check("lower95", r.lower95, fc.Lower95[i])
+			check("upper95", r.upper95, fc.Upper95[i])
+			check("cum_forecast", r.cumForecast, fc.CumForecast[i])
+			check("cum_lower95", r.cumLower95, fc.CumLower95[i])
+			check("cum_upper95", r.cumUpper95, fc.CumUpper95[i])
 		}
 	}
 	for key := range got {
@@ -654,7 +654,7 @@ func TestDrainAllWaitsForHeldChanges(t *testing.T) {
 
 // TestForecastBoundsFromStoredSE: the forecasts view forms every interval
 // bound from the stored forecast, standard error and t quantile (migration
-// 00005) with the operations the estimator uses, yhat -+ t SE, and so does
+// 00005) with the operations the estimator uses, forecast -+ t SE, and so does
 // the forecast history for the forecast issued at the newest folded bucket
 // (migration 00006). Each bound must equal the estimator's own Forecast of
 // the stored state: to the last bit on amd64, where Go fuses no
@@ -673,12 +673,12 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 		tol = 1e-15
 	}
 	rows, err := pool.Query(ctx, `
-		SELECT s.series_key, s.state, f.horizon, f.lo80, f.hi80, f.lo95, f.hi95, f.cum_lo95, f.cum_hi95,
-		       h.yhat, h.lo95, h.hi95
+		SELECT s.series_key, s.state, f.horizon, f.lower80, f.upper80, f.lower95, f.upper95, f.cum_lower95, f.cum_upper95,
+		       h.forecast, h.lower95, h.upper95
 		FROM sidetrend.forecasts f
 		JOIN sidetrend.series s ON s.series_key = f.series_key
 		JOIN sidetrend.forecast_history h
-		  ON h.series_key = f.series_key AND h.issued_for = s.folded_through AND h.horizon = f.horizon
+		  ON h.series_key = f.series_key AND h.issued_for = f.as_of AND h.horizon = f.horizon
 		ORDER BY 1, 3`)
 	if err != nil {
 		t.Fatal(err)
@@ -702,8 +702,8 @@ func TestForecastBoundsFromStoredSE(t *testing.T) {
 			t.Fatal(err)
 		}
 		i := h - 1
-		want := [9]float64{fc.Lo80[i], fc.Hi80[i], fc.Lo95[i], fc.Hi95[i], fc.CumLo95[i], fc.CumHi95[i],
-			fc.Yhat[i], fc.Lo95[i], fc.Hi95[i]}
+		want := [9]float64{fc.Lower80[i], fc.Upper80[i], fc.Lower95[i], fc.Upper95[i], fc.CumLower95[i], fc.CumUpper95[i],
+			fc.Forecast[i], fc.Lower95[i], fc.Upper95[i]}
 		for k := range want {
 			if d := math.Abs(got[k] - want[k]); d > tol*math.Abs(want[k]) {
 				t.Errorf("%s h=%d value %d (6-8: history): view %v, estimator %v", key, h, k, got[k], want[k])

@@ -195,8 +195,8 @@ func TestRolesLeastPrivilege(t *testing.T) {
 			t.Errorf("the reader selects sidetrend.%s: %v", v, err)
 		}
 	}
-	var yhat float64
-	if err := analyst.QueryRow(ctx, `SELECT yhat FROM sidetrend.forecasts WHERE tracker = 'sales' AND horizon = 1`).Scan(&yhat); err != nil {
+	var forecast float64
+	if err := analyst.QueryRow(ctx, `SELECT forecast FROM sidetrend.forecasts WHERE tracker = 'sales' AND horizon = 1`).Scan(&forecast); err != nil {
 		t.Errorf("the reader reads a forecast: %v", err)
 	} else {
 		// The clerk's takings, 20 + d and 1 on day d, under the tracker's
@@ -213,8 +213,8 @@ func TestRolesLeastPrivilege(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		if !scalar.EqualWithinAbsOrRel(yhat, fc.Yhat[0], 1e-9, 1e-9) {
-			t.Errorf("the reader's forecast %v, want the offline fit's %v", yhat, fc.Yhat[0])
+		if !scalar.EqualWithinAbsOrRel(forecast, fc.Forecast[0], 1e-9, 1e-9) {
+			t.Errorf("the reader's forecast %v, want the offline fit's %v", forecast, fc.Forecast[0])
 		}
 	}
 	for _, tbl := range []string{"trackers", "changes", "points", "series", "rejects", "tuning", "tune_requests"} {

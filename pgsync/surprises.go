@@ -38,11 +38,11 @@ type Surprise struct {
 	Bucket    int64  // bucket index of the actual
 	Kind      string // SurpriseOutside95 or SurpriseSlopeTurn
 
-	Actual float64 // the bucket's value
-	Yhat   float64 // one-step forecast issued one bucket earlier
-	Lo95   float64 // its 95 % interval
-	Hi95   float64
-	// Z is (actual - yhat) / se for outside95, and the slope's t statistic
+	Actual   float64 // the bucket's value
+	Forecast float64 // one-step forecast issued one bucket earlier
+	Lower95  float64 // its 95 % interval
+	Upper95  float64
+	// Z is (actual - forecast) / se for outside95, and the slope's t statistic
 	// slope / slope_se for slope_turn.
 	Z float64
 
@@ -90,9 +90,9 @@ type SurpriseWatch struct {
 // Observed is called after st.Observe(y) returned step for the given bucket.
 func (w *SurpriseWatch) Observed(bucket int64, y float64, step estimator.Step, st *estimator.State) {
 	report := bucket > w.After
-	if report && step.Scored && !math.IsNaN(step.Lo95) && !step.In95 {
+	if report && step.Scored && !math.IsNaN(step.Lower95) && !step.In95 {
 		w.Events = append(w.Events, Surprise{TrackerID: w.TrackerID, SeriesKey: w.SeriesKey, Bucket: bucket,
-			Kind: SurpriseOutside95, Actual: y, Yhat: step.Yhat, Lo95: step.Lo95, Hi95: step.Hi95,
+			Kind: SurpriseOutside95, Actual: y, Forecast: step.Forecast, Lower95: step.Lower95, Upper95: step.Upper95,
 			Z: step.Err / step.SE, Slope: math.NaN(), SlopeT: math.NaN()})
 	}
 	sl, err := st.Slope()
@@ -103,10 +103,10 @@ func (w *SurpriseWatch) Observed(bucket int64, y float64, step estimator.Step, s
 	w.LastDirection = dir
 	if turned && report {
 		ev := Surprise{TrackerID: w.TrackerID, SeriesKey: w.SeriesKey, Bucket: bucket, Kind: SurpriseSlopeTurn,
-			Actual: y, Yhat: math.NaN(), Lo95: math.NaN(), Hi95: math.NaN(), Z: sl.T(),
+			Actual: y, Forecast: math.NaN(), Lower95: math.NaN(), Upper95: math.NaN(), Z: sl.T(),
 			Slope: sl.Slope, SlopeT: sl.T(), Direction: dir}
 		if step.Scored {
-			ev.Yhat, ev.Lo95, ev.Hi95 = step.Yhat, step.Lo95, step.Hi95
+			ev.Forecast, ev.Lower95, ev.Upper95 = step.Forecast, step.Lower95, step.Upper95
 		}
 		w.Events = append(w.Events, ev)
 	}
@@ -128,12 +128,12 @@ func Turn(last, dir string) (next string, turned bool) {
 // it is and not announced again.
 const insertSurprisesSQL = `
 INSERT INTO sidetrend.surprises (tracker_id, tracker, series_key, bucket, period_start, kind,
-    actual, yhat, lo95, hi95, z, slope, slope_t, direction)
+    actual, forecast, lower95, upper95, z, slope, slope_t, direction)
 SELECT q.tid, t.name, q.key, q.bucket, sidetrend.bucket_start(q.bucket, t.bucket, t.tz), q.kind,
-       q.actual, q.yhat, q.lo95, q.hi95, q.z, q.slope, q.slope_t, q.direction
+       q.actual, q.forecast, q.lower95, q.upper95, q.z, q.slope, q.slope_t, q.direction
 FROM unnest($1::int[], $2::text[], $3::bigint[], $4::text[], $5::float8[], $6::float8[], $7::float8[],
             $8::float8[], $9::float8[], $10::float8[], $11::float8[], $12::text[])
-     AS q(tid, key, bucket, kind, actual, yhat, lo95, hi95, z, slope, slope_t, direction)
+     AS q(tid, key, bucket, kind, actual, forecast, lower95, upper95, z, slope, slope_t, direction)
 JOIN sidetrend.trackers t ON t.id = q.tid
 ORDER BY q.tid, q.key, q.bucket, q.kind
 ON CONFLICT (tracker_id, series_key, bucket, kind) DO NOTHING
@@ -160,21 +160,21 @@ func RecordSurprises(ctx context.Context, tx pgx.Tx, evs []Surprise) error {
 	}
 	n := len(evs)
 	tids, keys, buckets, kinds := make([]int32, n), make([]string, n), make([]int64, n), make([]string, n)
-	actual, yhat, lo, hi := make([]*float64, n), make([]*float64, n), make([]*float64, n), make([]*float64, n)
+	actual, forecast, lo, hi := make([]*float64, n), make([]*float64, n), make([]*float64, n), make([]*float64, n)
 	z, slope, slopeT, dirs := make([]*float64, n), make([]*float64, n), make([]*float64, n), make([]*string, n)
 	for i, e := range evs {
 		if e.Kind != SurpriseOutside95 && e.Kind != SurpriseSlopeTurn {
 			return fmt.Errorf("record surprises: unknown kind %q: use %q or %q", e.Kind, SurpriseOutside95, SurpriseSlopeTurn)
 		}
 		tids[i], keys[i], buckets[i], kinds[i] = int32(e.TrackerID), e.SeriesKey, e.Bucket, e.Kind
-		actual[i], yhat[i], lo[i], hi[i] = nullable(e.Actual), nullable(e.Yhat), nullable(e.Lo95), nullable(e.Hi95)
+		actual[i], forecast[i], lo[i], hi[i] = nullable(e.Actual), nullable(e.Forecast), nullable(e.Lower95), nullable(e.Upper95)
 		z[i], slope[i], slopeT[i] = nullable(e.Z), nullable(e.Slope), nullable(e.SlopeT)
 		if e.Direction != "" {
 			d := e.Direction
 			dirs[i] = &d
 		}
 	}
-	rows, err := tx.Query(ctx, insertSurprisesSQL, tids, keys, buckets, kinds, actual, yhat, lo, hi, z, slope, slopeT, dirs)
+	rows, err := tx.Query(ctx, insertSurprisesSQL, tids, keys, buckets, kinds, actual, forecast, lo, hi, z, slope, slopeT, dirs)
 	if err != nil {
 		return fmt.Errorf("record surprises: %w", err)
 	}

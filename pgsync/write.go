@@ -48,7 +48,7 @@ const (
 // rows are the series update's RETURNING, so their arrays are sent and
 // sliced once. Values that may be NULL or are of variable width are
 // unnested; the numbers come as flat arrays (intStride, floatStride); the
-// forecast arrays (yhat and its standard error, cumulative and its
+// forecast arrays (forecast and its standard error, cumulative and its
 // standard error; the views form the bounds) of all series are one flat
 // float8[] per column, each series' part at [off+1 : off+h] (h = 0: no
 // forecast, NULL). One statement per series cost a parse, bind and execute
@@ -79,9 +79,9 @@ WITH q AS (
            ` + null(intNErrors) + ` AS n_errors,
            ` + in(intIssue) + ` = 1 AS issue,
            ` + in(intPrune) + ` = 1 AS prune,
-           ` + slice(10) + ` AS yhat,
+           ` + slice(10) + ` AS forecast,
            ` + slice(11) + ` AS se,
-           ` + slice(12) + ` AS cum_yhat,
+           ` + slice(12) + ` AS cum_forecast,
            ` + slice(13) + ` AS cum_se,
            ` + fl(floatLambda) + ` AS lambda, ` + fl(floatLevel) + ` AS level,
            ` + fl(floatSlope) + ` AS slope, ` + fl(floatSlopeSE) + ` AS slope_se,
@@ -96,14 +96,14 @@ WITH q AS (
     UPDATE sidetrend.series s SET
         folded_through = q.folded, first_bucket = q.first, points = q.points, state = q.state,
         ready = q.ready, rebuild = false, pending_due = q.pending_due, updated_at = now(),
-        lambda = q.lambda, yhat = q.yhat, se = q.se, cum_yhat = q.cum_yhat, cum_se = q.cum_se,
+        lambda = q.lambda, forecast = q.forecast, se = q.se, cum_forecast = q.cum_forecast, cum_se = q.cum_se,
         t80 = q.t80, t95 = q.t95, level = q.level, slope = q.slope, slope_se = q.slope_se,
         sigma = q.sigma, n_errors = q.n_errors, mae = q.mae, rmse = q.rmse, mape = q.mape,
         bias = q.bias, coverage80 = q.cov80, coverage95 = q.cov95,
         last_error = q.last_error, last_direction = q.last_direction
     FROM q
     WHERE s.tracker_id = q.tid AND s.series_key = q.key
-    RETURNING q.tid, q.key, q.folded AS issued_for, q.yhat, q.se, q.t95, q.issue, q.prune
+    RETURNING q.tid, q.key, q.folded AS issued_for, q.forecast, q.se, q.t95, q.issue, q.prune
 ), issued AS (
     SELECT * FROM written WHERE issue
 )` + historyTailSQL
@@ -127,7 +127,7 @@ type seriesRows struct {
 	lastDir    []*string
 	ints       []int64   // intStride per series
 	floats     []float64 // floatStride per series
-	// yhat, se, cum_yhat, cum_se of every series, one after another (the
+	// forecast, se, cum_forecast, cum_se of every series, one after another (the
 	// views form the interval bounds).
 	fc [4][]float64
 }
@@ -213,8 +213,8 @@ func (r *seriesRows) add(w *seriesWork, st *estimator.State, pendingDue *time.Ti
 	}
 	ints[intOff] = int64(len(r.fc[0]))
 	if fc != nil {
-		ints[intH] = int64(len(fc.Yhat))
-		for i, col := range [4][]float64{fc.Yhat, fc.SE, fc.CumYhat, fc.CumSE} {
+		ints[intH] = int64(len(fc.Forecast))
+		for i, col := range [4][]float64{fc.Forecast, fc.SE, fc.CumForecast, fc.CumSE} {
 			r.fc[i] = appendFinite(r.fc[i], col)
 		}
 		floats[floatSigma], floats[floatT80], floats[floatT95] = fc.Sigma, fc.T80, fc.T95

@@ -7,7 +7,7 @@
 --
 -- Surprises are recorded by the sidecar as it folds each bucket:
 --   outside95   the actual fell outside the 95 % interval forecast one bucket
---               earlier; z = (actual - yhat) / se (|z| > about 2 by definition)
+--               earlier; z = (actual - forecast) / se (|z| > about 2 by definition)
 --   slope_turn  the trend's direction (up or down when |slope_t| >= 2) turned;
 --               flat readings in between do not count, so up, flat, down is
 --               one turn and up, flat, up is none; z = slope_t
@@ -25,7 +25,7 @@
 
 -- recipe: surprised_today
 -- Which series surprised us today (detected since local midnight)?
-SELECT tracker, series_key, kind, period_start, actual, yhat, lo95, hi95, round(z::numeric, 2) AS z, direction
+SELECT tracker, series_key, kind, period_start, actual, forecast, lower95, upper95, round(z::numeric, 2) AS z, direction
 FROM sidetrend.surprises
 WHERE detected_at >= date_trunc('day', now())
 ORDER BY abs(z) DESC NULLS LAST, tracker, series_key;

@@ -18,9 +18,9 @@
 --     newest bucket, still open (today, for daily buckets), is not an actual
 --     yet: its rows so far are partial. It is counted by the forecast, which
 --     is a forecast of the whole bucket.
---   * Forecast of the rest is the cumulative forecast cum_yhat of the buckets
+--   * Forecast of the rest is the cumulative forecast cum_forecast of the buckets
 --     from the next one to the last bucket of the period, with its 95 %
---     interval cum_lo95 .. cum_hi95. That interval accounts for the forecast
+--     interval cum_lower95 .. cum_upper95. That interval accounts for the forecast
 --     errors of one series being correlated across horizons (the trend
 --     estimate is shared); it needs the tracker's horizon to reach the end of
 --     the period. Set horizon => to cover the longest period you budget
@@ -28,7 +28,7 @@
 --     Where the horizon is too short, the projection is NULL and the note
 --     says so.
 --   * Probability of ending below budget uses a normal approximation:
---         sd = (cum_hi95 - cum_lo95) / (2 * 1.959963984540054)
+--         sd = (cum_upper95 - cum_lower95) / (2 * 1.959963984540054)
 --         p  = Phi((budget - projected) / sd)
 --     The intervals themselves use Student's t with T - p degrees of
 --     freedom, which has heavier tails than the normal, so p is approximate:
@@ -97,11 +97,11 @@ WITH b AS (
            (SELECT coalesce(sum(a.value), 0) FROM sidetrend.actuals a
              WHERE a.tracker = k.tracker AND a.series_key = k.cost_centre
                AND a.bucket >= k.first_b AND a.bucket < k.end_b AND a.bucket <= k.folded) AS actual_to_date,
-           f.cum_yhat, f.cum_lo95, f.cum_hi95,
-           (SELECT sum(g.yhat) FROM sidetrend.forecasts g
+           f.cum_forecast, f.cum_lower95, f.cum_upper95,
+           (SELECT sum(g.forecast) FROM sidetrend.forecasts g
              WHERE g.tracker = k.tracker AND g.series_key = k.cost_centre
                AND g.horizon BETWEEN k.first_b - k.folded AND k.end_b - 1 - k.folded
-            HAVING count(*) = k.end_b - k.first_b) AS future_yhat,
+            HAVING count(*) = k.end_b - k.first_b) AS future_forecast,
            EXISTS (SELECT 1 FROM sidetrend.forecasts g
                     WHERE g.tracker = k.tracker AND g.series_key = k.cost_centre) AS ready
     FROM k
@@ -111,22 +111,22 @@ WITH b AS (
 )
 SELECT v.tracker, v.cost_centre, v.period, v.period_start, v.budget, v.state, v.as_of,
        v.buckets_observed, v.buckets_remaining, v.actual_to_date,
-       CASE v.state WHEN 'closed' THEN 0 WHEN 'current' THEN v.cum_yhat END AS forecast_remaining,
+       CASE v.state WHEN 'closed' THEN 0 WHEN 'current' THEN v.cum_forecast END AS forecast_remaining,
        CASE v.state WHEN 'closed' THEN v.actual_to_date
-                    WHEN 'current' THEN v.actual_to_date + v.cum_yhat
-                    ELSE v.future_yhat END AS projected,
-       CASE v.state WHEN 'closed' THEN v.actual_to_date WHEN 'current' THEN v.actual_to_date + v.cum_lo95 END AS lo95,
-       CASE v.state WHEN 'closed' THEN v.actual_to_date WHEN 'current' THEN v.actual_to_date + v.cum_hi95 END AS hi95,
-       CASE v.state WHEN 'closed' THEN 0 WHEN 'current' THEN (v.cum_hi95 - v.cum_lo95) / (2 * 1.959963984540054) END AS sd,
+                    WHEN 'current' THEN v.actual_to_date + v.cum_forecast
+                    ELSE v.future_forecast END AS projected,
+       CASE v.state WHEN 'closed' THEN v.actual_to_date WHEN 'current' THEN v.actual_to_date + v.cum_lower95 END AS lower95,
+       CASE v.state WHEN 'closed' THEN v.actual_to_date WHEN 'current' THEN v.actual_to_date + v.cum_upper95 END AS upper95,
+       CASE v.state WHEN 'closed' THEN 0 WHEN 'current' THEN (v.cum_upper95 - v.cum_lower95) / (2 * 1.959963984540054) END AS sd,
        CASE v.state
            WHEN 'closed' THEN (v.actual_to_date < v.budget)::int::float8
            WHEN 'current' THEN sidetrend.normal_cdf(
-               (v.budget - v.actual_to_date - v.cum_yhat) / nullif((v.cum_hi95 - v.cum_lo95) / (2 * 1.959963984540054), 0))
+               (v.budget - v.actual_to_date - v.cum_forecast) / nullif((v.cum_upper95 - v.cum_lower95) / (2 * 1.959963984540054), 0))
        END AS p_below_budget,
        CASE WHEN v.state <> 'closed' AND NOT v.ready THEN 'the series is still warming up: no forecast yet'
             WHEN v.state <> 'closed' AND v.end_b - 1 - v.folded > v.horizon
                 THEN format('horizon too short: the period ends %s buckets ahead, the tracker forecasts %s', v.end_b - 1 - v.folded, v.horizon)
-            WHEN v.state = 'current' AND v.cum_lo95 IS NULL THEN 'no interval yet (too few points)'
+            WHEN v.state = 'current' AND v.cum_lower95 IS NULL THEN 'no interval yet (too few points)'
             WHEN v.state = 'future' THEN 'future period: point forecast only'
        END AS note
 FROM v;
@@ -134,7 +134,7 @@ FROM v;
 -- recipe: this_period
 -- Will we hit budget? The periods under way, least likely to stay within
 -- budget first.
-SELECT tracker, cost_centre, period, period_start, budget, actual_to_date, projected, lo95, hi95,
+SELECT tracker, cost_centre, period, period_start, budget, actual_to_date, projected, lower95, upper95,
        round(p_below_budget::numeric, 3) AS p_below_budget, note
 FROM budget_outlook
 WHERE state = 'current'
@@ -149,10 +149,10 @@ SELECT tracker, period, period_start,
        sum(actual_to_date) AS actual_to_date,
        CASE WHEN count(projected) = count(*) THEN sum(projected) END AS projected,
        CASE WHEN count(sd) = count(*) THEN sqrt(sum(sd * sd)) END AS sd_independent,
-       CASE WHEN count(sd) = count(*) THEN sum(projected) - 1.959963984540054 * sqrt(sum(sd * sd)) END AS lo95_independent,
-       CASE WHEN count(sd) = count(*) THEN sum(projected) + 1.959963984540054 * sqrt(sum(sd * sd)) END AS hi95_independent,
-       CASE WHEN count(lo95) = count(*) THEN sum(lo95) END AS lo95_sum_of_bounds,
-       CASE WHEN count(hi95) = count(*) THEN sum(hi95) END AS hi95_sum_of_bounds,
+       CASE WHEN count(sd) = count(*) THEN sum(projected) - 1.959963984540054 * sqrt(sum(sd * sd)) END AS lower95_independent,
+       CASE WHEN count(sd) = count(*) THEN sum(projected) + 1.959963984540054 * sqrt(sum(sd * sd)) END AS upper95_independent,
+       CASE WHEN count(lower95) = count(*) THEN sum(lower95) END AS lower95_sum_of_bounds,
+       CASE WHEN count(upper95) = count(*) THEN sum(upper95) END AS upper95_sum_of_bounds,
        CASE WHEN count(sd) = count(*) THEN
            CASE WHEN sum(sd * sd) > 0 THEN sidetrend.normal_cdf((sum(budget) - sum(projected)) / sqrt(sum(sd * sd)))
                 ELSE (sum(projected) < sum(budget))::int::float8 END

@@ -82,14 +82,14 @@ CREATE FOREIGN TABLE sidetrend_live.forecast (
     lambda       double precision NOT NULL,
     horizon      integer NOT NULL,
     period_start timestamptz,
-    yhat         double precision,
-    lo80         double precision,
-    hi80         double precision,
-    lo95         double precision,
-    hi95         double precision,
-    cum_yhat     double precision,
-    cum_lo95     double precision,
-    cum_hi95     double precision
+    forecast         double precision,
+    lower80         double precision,
+    upper80         double precision,
+    lower95         double precision,
+    upper95         double precision,
+    cum_forecast     double precision,
+    cum_lower95     double precision,
+    cum_upper95     double precision
 ) SERVER sidetrend_live
   OPTIONS (schema_name 'sidetrend_live', table_name 'forecast', updatable 'false', truncatable 'false');
 

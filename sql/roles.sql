@@ -12,7 +12,8 @@
 --                        sidetrend.surprises, showing only the trackers whose
 --                        source table the reader may SELECT; nothing on the
 --                        internal tables (trackers, changes, points, series,
---                        rejects, tuning, tune_requests).
+--                        rejects, tuning, tune_requests); rejected_rows shows
+--                        the rejects of those trackers.
 --   sidetrend_writer     what the reader has, plus track(); untrack(),
 --                        rebuild(), tune() and request_tune() on the trackers it
 --                        owns (the ones it created).

@@ -25,7 +25,7 @@ func BenchmarkForecastThroughFDW(b *testing.B) {
 			for b.Loop() {
 				var n int64
 				var sum float64
-				if err := conn.QueryRow(ctx, "SELECT count(*), sum(yhat) FROM sidetrend_live.forecast WHERE horizon <= $1", h).Scan(&n, &sum); err != nil || n != int64(h) {
+				if err := conn.QueryRow(ctx, "SELECT count(*), sum(forecast) FROM sidetrend_live.forecast WHERE horizon <= $1", h).Scan(&n, &sum); err != nil || n != int64(h) {
 					b.Fatalf("%d rows, %v", n, err)
 				}
 			}
@@ -33,7 +33,7 @@ func BenchmarkForecastThroughFDW(b *testing.B) {
 		b.Run(fmt.Sprintf("rows/horizon=%d", h), func(b *testing.B) {
 			b.ReportAllocs()
 			for b.Loop() {
-				rows, err := conn.Query(ctx, "SELECT horizon, yhat, lo95, hi95 FROM sidetrend_live.forecast WHERE horizon <= $1", h)
+				rows, err := conn.Query(ctx, "SELECT horizon, forecast, lower95, upper95 FROM sidetrend_live.forecast WHERE horizon <= $1", h)
 				if err != nil {
 					b.Fatal(err)
 				}
@@ -71,7 +71,7 @@ func BenchmarkWhatIfRefitThroughFDW(b *testing.B) {
 			b.ReportAllocs()
 			for b.Loop() {
 				var sum float64
-				if err := conn.QueryRow(ctx, "SELECT sum(yhat) FROM sidetrend_live.forecast WHERE lambda = 0.9 AND horizon <= 30").Scan(&sum); err != nil {
+				if err := conn.QueryRow(ctx, "SELECT sum(forecast) FROM sidetrend_live.forecast WHERE lambda = 0.9 AND horizon <= 30").Scan(&sum); err != nil {
 					b.Fatal(err)
 				}
 			}

@@ -57,7 +57,7 @@ func TestBudgetJoin(t *testing.T) {
 	// The budget covers 2025-07-01..14, the 14 days after the last bucket
 	// (2025-06-30, the 120th day from 2025-03-03) of the three shops.
 	rows, err := conn.Query(ctx, `
-SELECT b.series_key, (b.day - DATE '2025-06-30') AS h, b.amount::float8, f.yhat, f.lo95, f.hi95, f.cum_yhat, f.lambda
+SELECT b.series_key, (b.day - DATE '2025-06-30') AS h, b.amount::float8, f.forecast, f.lower95, f.upper95, f.cum_forecast, f.lambda
 FROM budget b
 JOIN sidetrend_live.forecast f
   ON f.tracker = b.tracker AND f.series_key = b.series_key AND f.period_start = b.day
@@ -71,8 +71,8 @@ ORDER BY 1, 2`)
 		var key string
 		var h int
 		var amount float64
-		var yhat, lo, hi, cum, lambda *float64
-		if err := rows.Scan(&key, &h, &amount, &yhat, &lo, &hi, &cum, &lambda); err != nil {
+		var forecast, lo, hi, cum, lambda *float64
+		if err := rows.Scan(&key, &h, &amount, &forecast, &lo, &hi, &cum, &lambda); err != nil {
 			t.Fatal(err)
 		}
 		s, _ := src.find("bakery_sales", key)
@@ -85,8 +85,8 @@ ORDER BY 1, 2`)
 		for _, c := range []struct {
 			name      string
 			got, want float64
-		}{{"yhat", nullable(yhat), fc.Yhat[h-1]}, {"lo95", nullable(lo), fc.Lo95[h-1]},
-			{"hi95", nullable(hi), fc.Hi95[h-1]}, {"cum_yhat", nullable(cum), fc.CumYhat[h-1]},
+		}{{"forecast", nullable(forecast), fc.Forecast[h-1]}, {"lower95", nullable(lo), fc.Lower95[h-1]},
+			{"upper95", nullable(hi), fc.Upper95[h-1]}, {"cum_forecast", nullable(cum), fc.CumForecast[h-1]},
 			{"lambda", nullable(lambda), s.info.Spec.Lambda}} {
 			if !sameBits(c.got, c.want) {
 				t.Errorf("%s h=%d %s = %v, want %v", key, h, c.name, c.got, c.want)
@@ -112,7 +112,7 @@ func TestWhatIfLambda(t *testing.T) {
 	f := newFixture(t, src)
 	conn := f.analyst(t, ctx)
 	rows, err := conn.Query(ctx, `
-SELECT series_key, lambda, horizon, yhat, lo80, hi80, lo95, hi95, cum_yhat, cum_lo95, cum_hi95
+SELECT series_key, lambda, horizon, forecast, lower80, upper80, lower95, upper95, cum_forecast, cum_lower95, cum_upper95
 FROM sidetrend_live.forecast
 WHERE tracker = 'bakery_sales' AND lambda IN (0.9, 0.95) AND horizon BETWEEN 1 AND 14
 ORDER BY series_key, lambda, horizon`)
@@ -141,8 +141,8 @@ ORDER BY series_key, lambda, horizon`)
 		if err != nil {
 			t.Fatal(err)
 		}
-		want := []float64{fc.Yhat[h-1], fc.Lo80[h-1], fc.Hi80[h-1], fc.Lo95[h-1], fc.Hi95[h-1],
-			fc.CumYhat[h-1], fc.CumLo95[h-1], fc.CumHi95[h-1]}
+		want := []float64{fc.Forecast[h-1], fc.Lower80[h-1], fc.Upper80[h-1], fc.Lower95[h-1], fc.Upper95[h-1],
+			fc.CumForecast[h-1], fc.CumLower95[h-1], fc.CumUpper95[h-1]}
 		for i := range want {
 			if !sameBits(nullable(v[i]), want[i]) {
 				t.Errorf("%s lambda=%v h=%d column %d = %v, want %v", key, lambda, h, i, nullable(v[i]), want[i])
@@ -158,7 +158,7 @@ ORDER BY series_key, lambda, horizon`)
 	}
 
 	// A lambda outside (0, 1] is refused with a sentence that says so.
-	_, err = conn.Exec(ctx, "SELECT yhat FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")
+	_, err = conn.Exec(ctx, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")
 	if err == nil || !strings.Contains(err.Error(), "outside (0, 1]") {
 		t.Fatalf("lambda 1.3: %v", err)
 	}
@@ -171,7 +171,7 @@ func TestExplainShowsPushedConditions(t *testing.T) {
 	conn := f.analyst(t, ctx)
 	var plan []string
 	rows, err := conn.Query(ctx, `EXPLAIN (VERBOSE)
-SELECT series_key, horizon, yhat FROM sidetrend_live.forecast
+SELECT series_key, horizon, forecast FROM sidetrend_live.forecast
 WHERE tracker = 'bakery_sales' AND horizon <= 7 AND lambda = 0.9`)
 	if err != nil {
 		t.Fatal(err)
@@ -360,9 +360,9 @@ func TestConcurrentSessions(t *testing.T) {
 			defer conn.Close(context.Background())
 			lambda := 0.80 + 0.004*float64(i) // fifty different what-if lambdas
 			query := func() error {
-				var yhat float64
-				err := conn.QueryRow(ctx, `SELECT yhat FROM sidetrend_live.forecast
-WHERE tracker = 'bakery_sales' AND series_key = 'market' AND lambda = $1 AND horizon = 7`, lambda).Scan(&yhat)
+				var forecast float64
+				err := conn.QueryRow(ctx, `SELECT forecast FROM sidetrend_live.forecast
+WHERE tracker = 'bakery_sales' AND series_key = 'market' AND lambda = $1 AND horizon = 7`, lambda).Scan(&forecast)
 				if err != nil {
 					return err
 				}
@@ -370,8 +370,8 @@ WHERE tracker = 'bakery_sales' AND series_key = 'market' AND lambda = $1 AND hor
 				spec.Lambda = lambda
 				st, _ := estimator.Fit(spec, s.values)
 				fc, _ := st.Forecast(7)
-				if !sameBits(yhat, fc.Yhat[6]) {
-					return fmt.Errorf("lambda %v: yhat %v, want %v", lambda, yhat, fc.Yhat[6])
+				if !sameBits(forecast, fc.Forecast[6]) {
+					return fmt.Errorf("lambda %v: forecast %v, want %v", lambda, forecast, fc.Forecast[6])
 				}
 				return nil
 			}
@@ -487,12 +487,12 @@ func TestPushdownMatchesLocal(t *testing.T) {
 	conn := f.analyst(t, ctx)
 	const rowsOf = "(SELECT * FROM sidetrend_live.forecast WHERE horizon <= 20 OFFSET 0) f"
 	cases := []struct{ pushed, local string }{
-		{"SELECT tracker, series_key, horizon, yhat FROM sidetrend_live.forecast f WHERE horizon <= 20 ORDER BY yhat DESC LIMIT 5 OFFSET 2",
-			"SELECT tracker, series_key, horizon, yhat FROM " + rowsOf + " ORDER BY yhat DESC LIMIT 5 OFFSET 2"},
-		{"SELECT series_key, count(*), sum(yhat), avg(yhat), min(lo95), max(hi95), avg(horizon), sum(horizon), sum(horizon::bigint), min(period_start) FROM sidetrend_live.forecast f WHERE horizon <= 20 GROUP BY series_key HAVING avg(yhat) > 150 ORDER BY 1",
-			"SELECT series_key, count(*), sum(yhat), avg(yhat), min(lo95), max(hi95), avg(horizon), sum(horizon), sum(horizon::bigint), min(period_start) FROM " + rowsOf + " GROUP BY series_key HAVING avg(yhat) > 150 ORDER BY 1"},
-		{"SELECT count(*) FILTER (WHERE yhat > 200), count(DISTINCT series_key), sum(yhat) * 2 FROM sidetrend_live.forecast f WHERE horizon <= 20",
-			"SELECT count(*) FILTER (WHERE yhat > 200), count(DISTINCT series_key), sum(yhat) * 2 FROM " + rowsOf},
+		{"SELECT tracker, series_key, horizon, forecast FROM sidetrend_live.forecast f WHERE horizon <= 20 ORDER BY forecast DESC LIMIT 5 OFFSET 2",
+			"SELECT tracker, series_key, horizon, forecast FROM " + rowsOf + " ORDER BY forecast DESC LIMIT 5 OFFSET 2"},
+		{"SELECT series_key, count(*), sum(forecast), avg(forecast), min(lower95), max(upper95), avg(horizon), sum(horizon), sum(horizon::bigint), min(period_start) FROM sidetrend_live.forecast f WHERE horizon <= 20 GROUP BY series_key HAVING avg(forecast) > 150 ORDER BY 1",
+			"SELECT series_key, count(*), sum(forecast), avg(forecast), min(lower95), max(upper95), avg(horizon), sum(horizon), sum(horizon::bigint), min(period_start) FROM " + rowsOf + " GROUP BY series_key HAVING avg(forecast) > 150 ORDER BY 1"},
+		{"SELECT count(*) FILTER (WHERE forecast > 200), count(DISTINCT series_key), sum(forecast) * 2 FROM sidetrend_live.forecast f WHERE horizon <= 20",
+			"SELECT count(*) FILTER (WHERE forecast > 200), count(DISTINCT series_key), sum(forecast) * 2 FROM " + rowsOf},
 		{"SELECT count(*) FROM sidetrend_live.forecast f WHERE horizon <= 20 AND (tracker LIKE 'bak%' OR horizon IN (3, 5)) AND period_start >= '2025-07-05 12:00:00+02'",
 			"SELECT count(*) FROM " + rowsOf + " WHERE (tracker LIKE 'bak%' OR horizon IN (3, 5)) AND period_start >= '2025-07-05 12:00:00+02'"},
 		{"SELECT f.series_key, f.horizon, s.state, s.points FROM sidetrend_live.forecast f JOIN sidetrend_live.series s USING (tracker, series_key) WHERE f.horizon <= 20 ORDER BY 1, 2",
@@ -552,8 +552,8 @@ func TestParameterizedScan(t *testing.T) {
 	conn := f.analyst(t, ctx)
 	// A LATERAL subquery makes postgres_fdw send the outer row's values as
 	// $1::text, $2::text, $3::date, one DECLARE per budget row.
-	const q = `SELECT b.series_key, b.day, x.yhat FROM budget b
-CROSS JOIN LATERAL (SELECT yhat FROM sidetrend_live.forecast f
+	const q = `SELECT b.series_key, b.day, x.forecast FROM budget b
+CROSS JOIN LATERAL (SELECT forecast FROM sidetrend_live.forecast f
   WHERE f.tracker = b.tracker AND f.series_key = b.series_key AND f.horizon = (b.day - DATE '2025-06-30') OFFSET 0) x
 WHERE b.day < '2025-07-04' ORDER BY 1, 2`
 	var plan strings.Builder
@@ -577,15 +577,15 @@ WHERE b.day < '2025-07-04' ORDER BY 1, 2`
 	for rows.Next() {
 		var key string
 		var d time.Time
-		var yhat float64
-		if err := rows.Scan(&key, &d, &yhat); err != nil {
+		var forecast float64
+		if err := rows.Scan(&key, &d, &forecast); err != nil {
 			t.Fatal(err)
 		}
 		h := int(d.Sub(time.Date(2025, 6, 30, 0, 0, 0, 0, time.UTC)).Hours() / 24)
 		s, _ := src.find("bakery_sales", key)
 		fc, _ := s.state.Forecast(h)
-		if !sameBits(yhat, fc.Yhat[h-1]) {
-			t.Errorf("%s %v: %v, want %v", key, d, yhat, fc.Yhat[h-1])
+		if !sameBits(forecast, fc.Forecast[h-1]) {
+			t.Errorf("%s %v: %v, want %v", key, d, forecast, fc.Forecast[h-1])
 		}
 		n++
 	}

@@ -187,7 +187,7 @@ func TestStatementMemoryLimit(t *testing.T) {
 	// A sort of 10,000 rows of 13 columns and a key needs 10,000 x 14
 	// values: more than 1 MiB. Refused before the refit.
 	_, err := execAll(ctx, c, `SELECT * FROM sidetrend_live.forecast
-		WHERE series_key = 'market' AND lambda = 0.9 AND horizon <= 10000 ORDER BY yhat`)
+		WHERE series_key = 'market' AND lambda = 0.9 AND horizon <= 10000 ORDER BY forecast`)
 	pe := pgErr(t, err, codeOutOfMemory, "sort of 10,000 rows")
 	if !strings.Contains(pe.Message, "at most 1 MiB") || !strings.Contains(pe.Hint, "--sql-max-statement-memory-mb") {
 		t.Errorf("sort: %q hint %q", pe.Message, pe.Hint)

@@ -157,30 +157,30 @@ func TestDeparsedShapes(t *testing.T) {
 		lambdas  string
 		tracker  string
 	}{
-		{"DECLARE c1 CURSOR FOR\nSELECT tracker, series_key, horizon, yhat FROM sidetrend_live.forecast WHERE ((horizon <= 30))",
+		{"DECLARE c1 CURSOR FOR\nSELECT tracker, series_key, horizon, forecast FROM sidetrend_live.forecast WHERE ((horizon <= 30))",
 			"1..30", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT tracker, yhat FROM sidetrend_live.forecast WHERE ((horizon < 8)) AND ((tracker = 'shop_sales'))",
+		{"DECLARE c1 CURSOR FOR\nSELECT tracker, forecast FROM sidetrend_live.forecast WHERE ((horizon < 8)) AND ((tracker = 'shop_sales'))",
 			"1..7", "stored", "shop_sales"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon = 12))", "12", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon = ANY ('{1,7,30}'::integer[])))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon = 12))", "12", "stored", "any"},
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon = ANY ('{1,7,30}'::integer[])))",
 			"1,7,30", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon >= 5)) AND ((horizon <= 9))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon >= 5)) AND ((horizon <= 9))",
 			"5..9", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 3)) AND ((lambda = 0.9::double precision))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 3)) AND ((lambda = 0.9::double precision))",
 			"1..3", "0.9", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 3)) AND ((lambda = ANY ('{0.9,0.95}'::double precision[])))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 3)) AND ((lambda = ANY ('{0.9,0.95}'::double precision[])))",
 			"1..3", "0.9,0.95", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= $1::integer)) AND ((tracker = $2::text))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= $1::integer)) AND ((tracker = $2::text))",
 			"1..4", "stored", "meter"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon OPERATOR(pg_catalog.<=) 2))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon OPERATOR(pg_catalog.<=) 2))",
 			"1..2", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE (((horizon = 1) OR (horizon = 3)))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE (((horizon = 1) OR (horizon = 3)))",
 			"1,3", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 2.5))", "1..2", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 30::bigint)) AND ((horizon > (-1)))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 2.5))", "1..2", "stored", "any"},
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 30::bigint)) AND ((horizon > (-1)))",
 			"1..30", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon IS NULL))", "none", "stored", "any"},
-		{"DECLARE c1 CURSOR FOR\nSELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 10)) AND ((tracker = ANY (ARRAY['a'::text, $2::text])))",
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon IS NULL))", "none", "stored", "any"},
+		{"DECLARE c1 CURSOR FOR\nSELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 10)) AND ((tracker = ANY (ARRAY['a'::text, $2::text])))",
 			"1..10", "stored", "a,meter"},
 	}
 	params := []paramVal{{t: tUnknown, text: "4", known: true}, {t: tUnknown, text: "meter", known: true}}
@@ -250,19 +250,19 @@ func TestRefusals(t *testing.T) {
 		sql, code, says string
 	}{
 		{"INSERT INTO sidetrend_live.forecast(tracker) VALUES ($1)", codeReadOnly, "read-only"},
-		{"UPDATE sidetrend_live.forecast SET yhat = 1::double precision WHERE ((horizon = 1))", codeReadOnly, "read-only"},
+		{"UPDATE sidetrend_live.forecast SET forecast = 1::double precision WHERE ((horizon = 1))", codeReadOnly, "read-only"},
 		{"DELETE FROM sidetrend_live.series", codeReadOnly, "read-only"},
-		{"EXPLAIN SELECT yhat FROM sidetrend_live.forecast", codeFeatureNotSupported, "use_remote_estimate"},
+		{"EXPLAIN SELECT forecast FROM sidetrend_live.forecast", codeFeatureNotSupported, "use_remote_estimate"},
 		{"VACUUM", codeReadOnly, "read-only"},
 		{"LISTEN sidetrend", codeFeatureNotSupported, "not supported"},
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE ((horizon <= 3)) FOR UPDATE", codeFeatureNotSupported, "FOR UPDATE"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE ((horizon <= 3)) FOR UPDATE", codeFeatureNotSupported, "FOR UPDATE"},
 		{"SELECT tracker FROM sidetrend_live.series TABLESAMPLE BERNOULLI(10)", codeFeatureNotSupported, "TABLESAMPLE"},
 		{"SELEKT 1", codeFeatureNotSupported, "SELEKT"},
 		{"SELECT (1", codeSyntax, "end of input"},
 		{"SELECT 'abc", codeSyntax, "unterminated"},
 		{"DECLARE c1 SCROLL CURSOR FOR SELECT 1", codeFeatureNotSupported, "NO SCROLL"},
 		{"FETCH BACKWARD 1 FROM c1", codeObjectState, "forward"},
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE ((tracker ~ 'x'))", codeFeatureNotSupported, "operator ~"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE ((tracker ~ 'x'))", codeFeatureNotSupported, "operator ~"},
 	}
 	for _, c := range cases {
 		_, err := parseStatement(c.sql)
@@ -289,15 +289,15 @@ func TestCompileRefusals(t *testing.T) {
 	cases := []struct {
 		sql, code, says string
 	}{
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE ((lower(tracker) ~~ 'n1%'::text))", codeFeatureNotSupported, "lower"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE ((lower(tracker) ~~ 'n1%'::text))", codeFeatureNotSupported, "lower"},
 		{"SELECT nope FROM sidetrend_live.forecast", codeUndefinedColumn, "nope"},
-		{"SELECT yhat FROM sidetrend_live.nothing", codeUndefinedTable, "nothing"},
-		{"SELECT yhat FROM public.forecast", codeUndefinedTable, "public.forecast"},
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE ((tracker = 1))", codeUndefinedFunction, "text = integer"},
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE ((horizon = 'x'))", codeInvalidText, "integer"},
+		{"SELECT forecast FROM sidetrend_live.nothing", codeUndefinedTable, "nothing"},
+		{"SELECT forecast FROM public.forecast", codeUndefinedTable, "public.forecast"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE ((tracker = 1))", codeUndefinedFunction, "text = integer"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE ((horizon = 'x'))", codeInvalidText, "integer"},
 		{"SELECT tracker, count(*) FROM sidetrend_live.series", codeGrouping, "GROUP BY"},
-		{"SELECT yhat FROM sidetrend_live.forecast WHERE count(*) > 1", codeGrouping, "WHERE"},
-		{"SELECT r1.yhat FROM (sidetrend_live.forecast r1 FULL JOIN sidetrend_live.series r2 ON (TRUE))", codeFeatureNotSupported, "FULL"},
+		{"SELECT forecast FROM sidetrend_live.forecast WHERE count(*) > 1", codeGrouping, "WHERE"},
+		{"SELECT r1.forecast FROM (sidetrend_live.forecast r1 FULL JOIN sidetrend_live.series r2 ON (TRUE))", codeFeatureNotSupported, "FULL"},
 	}
 	for _, c := range cases {
 		st, err := parseStatement(c.sql)
@@ -317,9 +317,9 @@ func TestCompileRefusals(t *testing.T) {
 
 func TestHorizonRequired(t *testing.T) {
 	for _, sql := range []string{
-		"SELECT yhat FROM sidetrend_live.forecast",
-		"SELECT yhat FROM sidetrend_live.forecast WHERE ((horizon > 3))",
-		"SELECT yhat FROM sidetrend_live.forecast WHERE (((horizon < 3) OR (tracker = 'a')))",
+		"SELECT forecast FROM sidetrend_live.forecast",
+		"SELECT forecast FROM sidetrend_live.forecast WHERE ((horizon > 3))",
+		"SELECT forecast FROM sidetrend_live.forecast WHERE (((horizon < 3) OR (tracker = 'a')))",
 	} {
 		p := compileDecl(t, sql)
 		_, err := horizons(p.domains[0][fcHorizon])
@@ -327,11 +327,11 @@ func TestHorizonRequired(t *testing.T) {
 			t.Errorf("%s: got %v, want the 0A000 error that says to add WHERE horizon <= 30", sql, err)
 		}
 	}
-	p := compileDecl(t, "SELECT yhat FROM sidetrend_live.forecast WHERE horizon <= 10001")
+	p := compileDecl(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 10001")
 	if _, err := horizons(p.domains[0][fcHorizon]); code(err) != codeInvalidParameter {
 		t.Errorf("horizon <= 10001: got %v, want 22023", err)
 	}
-	p = compileDecl(t, "SELECT yhat FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")
+	p = compileDecl(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")
 	if _, _, err := lambdas(p.domains[0][fcLambda]); code(err) != codeInvalidParameter || !strings.Contains(err.Error(), "(0, 1]") {
 		t.Errorf("lambda 1.3: got %v, want 22023 saying lambda must be in (0, 1]", err)
 	}

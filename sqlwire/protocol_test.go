@@ -160,7 +160,7 @@ func TestExtendedProtocol(t *testing.T) {
 	}
 	// postgres_fdw's create_cursor: Parse, Bind with text parameters,
 	// Describe portal, Execute, Sync. Describe must answer NoData.
-	res := c.ExecParams(ctx, "DECLARE c1 CURSOR FOR\nSELECT horizon, yhat FROM sidetrend_live.forecast WHERE ((tracker = $1::text)) AND ((series_key = $2::text)) AND ((horizon <= $3::integer))",
+	res := c.ExecParams(ctx, "DECLARE c1 CURSOR FOR\nSELECT horizon, forecast FROM sidetrend_live.forecast WHERE ((tracker = $1::text)) AND ((series_key = $2::text)) AND ((horizon <= $3::integer))",
 		[][]byte{[]byte("bakery_sales"), []byte("harbour"), []byte("4")}, nil, nil, nil).Read()
 	if res.Err != nil || res.CommandTag.String() != "DECLARE CURSOR" || len(res.FieldDescriptions) != 0 {
 		t.Fatalf("DECLARE: tag %q fields %d err %v", res.CommandTag, len(res.FieldDescriptions), res.Err)
@@ -179,7 +179,7 @@ func TestExtendedProtocol(t *testing.T) {
 
 	// A named prepared statement: Describe gives the result columns and
 	// parameter types, and it runs with several parameter sets.
-	sd, err := c.Prepare(ctx, "by_key", "SELECT series_key, horizon, yhat FROM sidetrend_live.forecast WHERE series_key = $1 AND horizon <= $2::integer ORDER BY horizon", nil)
+	sd, err := c.Prepare(ctx, "by_key", "SELECT series_key, horizon, forecast FROM sidetrend_live.forecast WHERE series_key = $1 AND horizon <= $2::integer ORDER BY horizon", nil)
 	if err != nil {
 		t.Fatal(err)
 	}

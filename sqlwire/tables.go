@@ -79,14 +79,14 @@ const (
 	fcLambda
 	fcHorizon
 	fcPeriodStart
-	fcYhat
-	fcLo80
-	fcHi80
-	fcLo95
-	fcHi95
-	fcCumYhat
-	fcCumLo95
-	fcCumHi95
+	fcForecast
+	fcLower80
+	fcUpper80
+	fcLower95
+	fcUpper95
+	fcCumForecast
+	fcCumLower95
+	fcCumUpper95
 )
 
 var forecastTable = &tableDef{
@@ -94,9 +94,9 @@ var forecastTable = &tableDef{
 	cols: []columnDef{
 		{"tracker", tText, true}, {"series_key", tText, true}, {"lambda", tFloat8, true},
 		{"horizon", tInt4, true}, {"period_start", tTimestamptz, false},
-		{"yhat", tFloat8, false}, {"lo80", tFloat8, false}, {"hi80", tFloat8, false},
-		{"lo95", tFloat8, false}, {"hi95", tFloat8, false},
-		{"cum_yhat", tFloat8, false}, {"cum_lo95", tFloat8, false}, {"cum_hi95", tFloat8, false},
+		{"forecast", tFloat8, false}, {"lower80", tFloat8, false}, {"upper80", tFloat8, false},
+		{"lower95", tFloat8, false}, {"upper95", tFloat8, false},
+		{"cum_forecast", tFloat8, false}, {"cum_lower95", tFloat8, false}, {"cum_upper95", tFloat8, false},
 	},
 	scan: scanForecast,
 }
@@ -318,7 +318,7 @@ func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
 		return nil, err
 	}
 	it := &forecastIter{req: req, infos: infos, horizons: hs, maxH: hs[len(hs)-1],
-		row: make([]value, fcCumHi95+1)}
+		row: make([]value, fcCumUpper95+1)}
 	if pinned {
 		it.lambdas = ls
 	}
@@ -346,11 +346,11 @@ func (it *forecastIter) next(ctx context.Context) ([]value, error) {
 		r[fcPeriodStart] = timeVal(info.Calendar.Start(info.LastIndex + int64(h)))
 	}
 	fc := it.fc
-	r[fcYhat] = float8OrNull(fc.Yhat[k])
-	r[fcLo80], r[fcHi80] = float8OrNull(fc.Lo80[k]), float8OrNull(fc.Hi80[k])
-	r[fcLo95], r[fcHi95] = float8OrNull(fc.Lo95[k]), float8OrNull(fc.Hi95[k])
-	r[fcCumYhat] = float8OrNull(fc.CumYhat[k])
-	r[fcCumLo95], r[fcCumHi95] = float8OrNull(fc.CumLo95[k]), float8OrNull(fc.CumHi95[k])
+	r[fcForecast] = float8OrNull(fc.Forecast[k])
+	r[fcLower80], r[fcUpper80] = float8OrNull(fc.Lower80[k]), float8OrNull(fc.Upper80[k])
+	r[fcLower95], r[fcUpper95] = float8OrNull(fc.Lower95[k]), float8OrNull(fc.Upper95[k])
+	r[fcCumForecast] = float8OrNull(fc.CumForecast[k])
+	r[fcCumLower95], r[fcCumUpper95] = float8OrNull(fc.CumLower95[k]), float8OrNull(fc.CumUpper95[k])
 	return r, nil
 }
 

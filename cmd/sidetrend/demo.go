@@ -165,11 +165,16 @@ const demoTrackSQL = `SELECT sidetrend.track('sidetrend_demo.repair_jobs', 'fini
                        bucket => '1 day', period => 7, harmonics => 2, lambda => 0.98,
                        horizon => 14, name => 'demo_takings');`
 
-const demoForecastSQL = `SELECT (period_start AT TIME ZONE 'UTC')::date AS day,
+const demoForecastSQL = `SELECT horizon AS ahead,
+       (period_start AT TIME ZONE 'UTC')::date AS day,
        to_char(period_start AT TIME ZONE 'UTC', 'Dy') AS dow,
-       round(yhat::numeric) AS forecast,
-       round(lo80::numeric) AS lo80, round(hi80::numeric) AS hi80,
-       round(lo95::numeric) AS lo95, round(hi95::numeric) AS hi95
+       round(lower95::numeric) AS lower95, round(lower80::numeric) AS lower80,
+       round(forecast::numeric) AS forecast,
+       round(upper80::numeric) AS upper80, round(upper95::numeric) AS upper95,
+       '|' AS "|",
+       round(cum_lower95::numeric) AS cum_lower95,
+       round(cum_forecast::numeric) AS cum_forecast,
+       round(cum_upper95::numeric) AS cum_upper95
 FROM sidetrend.forecasts
 WHERE tracker = 'demo_takings' AND series_key = 'brindlecombe'
 ORDER BY horizon;`
@@ -198,9 +203,9 @@ const demoMonthEndSQL = `WITH m AS (
 ), p AS (
     -- month to date plus the cumulative forecast of the days left
     SELECT m.branch, m.as_of, m.last_day - m.as_of AS days_left, a.to_date, b.budget,
-           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_yhat END::numeric AS projected,
-           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_lo95 END::numeric AS lo95,
-           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_hi95 END::numeric AS hi95
+           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_forecast END::numeric AS projected,
+           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_lower95 END::numeric AS lower95,
+           a.to_date + CASE WHEN m.last_day = m.as_of THEN 0 ELSE f.cum_upper95 END::numeric AS upper95
     FROM m
     JOIN actual a ON a.branch = m.branch
     JOIN sidetrend_demo.budgets b ON b.branch = m.branch AND b.month = m.month
@@ -208,11 +213,11 @@ const demoMonthEndSQL = `WITH m AS (
                                    AND f.horizon = m.last_day - m.as_of
 )
 SELECT branch, as_of, days_left, round(to_date) AS to_date,
-       round(projected) AS projected, round(lo95) AS lo95, round(hi95) AS hi95,
+       round(projected) AS projected, round(lower95) AS lower95, round(upper95) AS upper95,
        round(budget) AS budget, round(projected - budget) AS vs_budget,
        CASE WHEN projected IS NULL THEN 'month end is beyond the horizon'
-            WHEN lo95 > budget THEN 'above budget'
-            WHEN hi95 < budget THEN 'below budget'
+            WHEN lower95 > budget THEN 'above budget'
+            WHEN upper95 < budget THEN 'below budget'
             ELSE 'could go either way' END AS outlook
 FROM p
 ORDER BY branch;`
@@ -346,7 +351,7 @@ func runDemo(ctx context.Context, w io.Writer, o demoOptions) (err error) {
 	}
 	runner.Stop()
 
-	fmt.Fprintf(w, "Next 14 days for %s, with 80 %% and 95 %% prediction intervals:\n", demoFocus)
+	fmt.Fprintf(w, "Next 14 days for %s: the forecast between its 80 %% and 95 %% prediction bounds, then running totals:\n", demoFocus)
 	if err := demoTable(ctx, w, pool, demoForecastSQL); err != nil {
 		return err
 	}
@@ -467,7 +472,7 @@ func demoWait(ctx context.Context, pool *pgxpool.Pool, caught <-chan struct{}, d
 }
 
 const demoLiveSQL = `
-SELECT f.yhat, f.lo95, f.hi95, (f.period_start AT TIME ZONE 'UTC')::date
+SELECT f.forecast, f.lower95, f.upper95, (f.period_start AT TIME ZONE 'UTC')::date
 FROM sidetrend.forecasts f
 WHERE f.tracker = $1 AND f.series_key = $2 AND f.horizon = 1`
 
@@ -483,13 +488,13 @@ func demoLive(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.Ra
 	}
 	fmt.Fprintf(w, "Live: a new day of repair jobs every %s (%d days); after each, the sidecar updates every series.\n", o.every, days)
 	// Columns: the new day, the focus workshop's takings that day, its
-	// forecast for the next day with the 95 % interval, and every slope.
-	const head = "%-10s  %12s  %-6s %6s %-14s |"
-	header := fmt.Sprintf(head, "new day", demoFocus, "next", "yhat", " 95 % interval")
+	// forecast for the next day between its 95 % bounds, and every slope.
+	const head = "%-10s  %12s  %-6s  %7s  %8s  %7s |"
+	header := fmt.Sprintf(head, "new day", demoFocus, "next", "lower95", "forecast", "upper95")
 	for _, b := range demoBranches {
 		header += fmt.Sprintf(" %12s", b.key)
 	}
-	fmt.Fprintf(w, "%*s%s\n", len(fmt.Sprintf(head, "", "", "", "", "")), "", " slope, euros per day")
+	fmt.Fprintf(w, "%*s%s\n", len(fmt.Sprintf(head, "", "", "", "", "", "")), "", " slope, euros per day")
 	fmt.Fprintln(w, header+"  sidecar")
 	tick := time.NewTicker(o.every)
 	defer tick.Stop()
@@ -524,9 +529,9 @@ func demoLive(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.Ra
 			return fmt.Errorf("wait for the sidecar to take in %s: %w", day.Format(time.DateOnly), err)
 		}
 		took := time.Since(inserted)
-		var yhat, lo, hi float64
+		var forecast, lo, hi float64 // the forecast and its 95 % bounds
 		var next time.Time
-		if err := pool.QueryRow(ctx, demoLiveSQL, demoTracker, demoFocus).Scan(&yhat, &lo, &hi, &next); err != nil {
+		if err := pool.QueryRow(ctx, demoLiveSQL, demoTracker, demoFocus).Scan(&forecast, &lo, &hi, &next); err != nil {
 			return fmt.Errorf("read the next-day forecast: %w", err)
 		}
 		slopes := map[string]float64{}
@@ -547,7 +552,7 @@ func demoLive(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.Ra
 			return fmt.Errorf("read slopes: %w", err)
 		}
 		line := fmt.Sprintf(head, day.Format(time.DateOnly), fmt.Sprintf("%.2f", focusTotal),
-			next.Format("Mon 02"), fmt.Sprintf("%.0f", yhat), fmt.Sprintf("[%5.0f, %5.0f]", lo, hi))
+			next.Format("Mon 02"), fmt.Sprintf("%.0f", lo), fmt.Sprintf("%.0f", forecast), fmt.Sprintf("%.0f", hi))
 		for _, b := range demoBranches {
 			line += fmt.Sprintf(" %+12.2f", slopes[b.key])
 		}

@@ -38,7 +38,8 @@ func TestDemo(t *testing.T) {
 	}
 	// 1s / 250ms = 4 live days, 2025-04-13 to 2025-04-16, each a line.
 	for _, day := range []string{"2025-04-13", "2025-04-14", "2025-04-15", "2025-04-16"} {
-		if !regexp.MustCompile(`(?m)^` + day + ` +[0-9.]+ +\w{3} \d\d +\d+ \[`).MatchString(out) {
+		// new day, takings, next day, lower95, forecast, upper95, a bar
+		if !regexp.MustCompile(`(?m)^` + day + ` +[0-9.]+ +\w{3} \d\d +\d+ +\d+ +\d+ \|`).MatchString(out) {
 			t.Errorf("no live line for %s in:\n%s", day, out)
 		}
 	}
@@ -123,7 +124,7 @@ func checkMonthEnd(t *testing.T, url string) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			want += fc.CumYhat[r.daysLeft-1]
+			want += fc.CumForecast[r.daysLeft-1]
 		}
 		// The query rounds to whole euros: half a euro either way.
 		if math.Abs(r.projected-want) > 0.5 {

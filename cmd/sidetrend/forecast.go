@@ -23,8 +23,14 @@ import (
 const forecastCaution = "Caution: forecasts and intervals are estimates under model assumptions; decisions stay with people."
 
 // forecastColumns are the columns of the csv and json output (contract).
-var forecastColumns = []string{"series_key", "horizon", "period_start", "yhat", "lo80", "hi80",
-	"lo95", "hi95", "cum_yhat", "cum_lo95", "cum_hi95", "as_of"}
+var forecastColumns = []string{"series_key", "horizon", "period_start", "forecast", "lower80", "upper80",
+	"lower95", "upper95", "cum_forecast", "cum_lower95", "cum_upper95", "as_of"}
+
+// forecastTableHeader heads the table output: steps ahead, the bucket, the
+// 95 % and 80 % bounds around the forecast, and after a bar the cumulative
+// forecast with its 95 % bounds.
+var forecastTableHeader = []string{"ahead", "period start", "lower95", "lower80", "forecast", "upper80", "upper95",
+	"|", "cum_lower95", "cum_forecast", "cum_upper95"}
 
 // wallLayouts are the time forms without a zone that the CSV may use; they
 // are wall-clock time in --tz. Go's parser takes a fractional second after
@@ -54,7 +60,7 @@ func forecastCommand() *cli.Command {
 			&cli.IntFlag{Name: "degree", Value: 1, Usage: "polynomial trend degree, 0 to 3"},
 			&cli.Float64Flag{Name: "period", Usage: "seasonal period in buckets (7 for weekly in days); 0 for none"},
 			&cli.IntFlag{Name: "harmonics", Usage: "harmonic pairs for the season, 1 to 6, with --period"},
-			&cli.StringFlag{Name: "lambda", Value: "0.95", Usage: "forgetting factor in (0, 1], or 'auto' to choose it per series by one-step error"},
+			&cli.StringFlag{Name: "lambda", Usage: "forgetting factor in (0, 1]; left out, each series' own is chosen from the data by one-step error"},
 			&cli.IntFlag{Name: "burn-in", Usage: "points beyond the parameter count before a series gets forecasts"},
 			&cli.IntFlag{Name: "horizon", Value: 12, Usage: "buckets to forecast"},
 			&cli.StringFlag{Name: "format", Value: "table", Usage: "output: table (for reading), csv or json"},
@@ -150,13 +156,14 @@ func forecastOptionsFrom(c *cli.Context) (forecastOptions, error) {
 		return o, fmt.Errorf("--period %v needs --harmonics: give 1 to %d harmonic pairs (more follow a sharper seasonal shape)",
 			o.spec.Period, min(estimator.MaxHarmonics, int(math.Floor(o.spec.Period/2))))
 	}
-	switch l := c.String("lambda"); l {
-	case "auto":
-		o.autoLambda = true
-	default:
+	// Without --lambda each series' forgetting factor is chosen from its
+	// data, as lambda => NULL does in sidetrend.track.
+	o.autoLambda = !c.IsSet("lambda")
+	if !o.autoLambda {
+		l := c.String("lambda")
 		v, err := strconv.ParseFloat(strings.TrimSpace(l), 64)
 		if err != nil {
-			return o, fmt.Errorf("--lambda %q is not a number: use a forgetting factor such as 0.95, or auto", l)
+			return o, fmt.Errorf("--lambda %q is not a number: give a forgetting factor such as 0.95, or leave --lambda out to choose it from the data", l)
 		}
 		o.spec.Lambda = v
 	}
@@ -422,14 +429,14 @@ type forecastRecord struct {
 	SeriesKey   string   `json:"series_key"`
 	Horizon     int      `json:"horizon"`
 	PeriodStart string   `json:"period_start"`
-	Yhat        float64  `json:"yhat"`
-	Lo80        *float64 `json:"lo80"`
-	Hi80        *float64 `json:"hi80"`
-	Lo95        *float64 `json:"lo95"`
-	Hi95        *float64 `json:"hi95"`
-	CumYhat     float64  `json:"cum_yhat"`
-	CumLo95     *float64 `json:"cum_lo95"`
-	CumHi95     *float64 `json:"cum_hi95"`
+	Forecast    float64  `json:"forecast"`
+	Lower80     *float64 `json:"lower80"`
+	Upper80     *float64 `json:"upper80"`
+	Lower95     *float64 `json:"lower95"`
+	Upper95     *float64 `json:"upper95"`
+	CumForecast float64  `json:"cum_forecast"`
+	CumLower95  *float64 `json:"cum_lower95"`
+	CumUpper95  *float64 `json:"cum_upper95"`
 	AsOf        string   `json:"as_of"`
 }
 
@@ -446,13 +453,13 @@ func records(cal calendar.Calendar, out []seriesForecast) []forecastRecord {
 	for _, sf := range out {
 		asOf := cal.Start(sf.lastIdx).Format(time.RFC3339)
 		fc := sf.fc
-		for i := range fc.Yhat {
+		for i := range fc.Forecast {
 			recs = append(recs, forecastRecord{
 				SeriesKey: sf.key, Horizon: i + 1,
 				PeriodStart: cal.Start(sf.lastIdx + int64(i) + 1).Format(time.RFC3339),
-				Yhat:        fc.Yhat[i], Lo80: bound(fc.Lo80[i]), Hi80: bound(fc.Hi80[i]),
-				Lo95: bound(fc.Lo95[i]), Hi95: bound(fc.Hi95[i]),
-				CumYhat: fc.CumYhat[i], CumLo95: bound(fc.CumLo95[i]), CumHi95: bound(fc.CumHi95[i]),
+				Forecast:    fc.Forecast[i], Lower80: bound(fc.Lower80[i]), Upper80: bound(fc.Upper80[i]),
+				Lower95: bound(fc.Lower95[i]), Upper95: bound(fc.Upper95[i]),
+				CumForecast: fc.CumForecast[i], CumLower95: bound(fc.CumLower95[i]), CumUpper95: bound(fc.CumUpper95[i]),
 				AsOf: asOf,
 			})
 		}
@@ -483,8 +490,8 @@ func writeForecasts(w io.Writer, o forecastOptions, out []seriesForecast) error 
 			return num(*x)
 		}
 		for _, r := range recs {
-			if err := cw.Write([]string{r.SeriesKey, strconv.Itoa(r.Horizon), r.PeriodStart, num(r.Yhat),
-				opt(r.Lo80), opt(r.Hi80), opt(r.Lo95), opt(r.Hi95), num(r.CumYhat), opt(r.CumLo95), opt(r.CumHi95), r.AsOf}); err != nil {
+			if err := cw.Write([]string{r.SeriesKey, strconv.Itoa(r.Horizon), r.PeriodStart, num(r.Forecast),
+				opt(r.Lower80), opt(r.Upper80), opt(r.Lower95), opt(r.Upper95), num(r.CumForecast), opt(r.CumLower95), opt(r.CumUpper95), r.AsOf}); err != nil {
 				return err
 			}
 		}
@@ -501,7 +508,7 @@ func writeForecastTable(w io.Writer, o forecastOptions, out []seriesForecast) er
 		fc := sf.fc
 		// Six significant digits on the largest forecast, two to six decimals.
 		big := 0.0
-		for _, y := range fc.CumYhat {
+		for _, y := range fc.CumForecast {
 			big = max(big, math.Abs(y))
 		}
 		dec := 2
@@ -514,16 +521,22 @@ func writeForecastTable(w io.Writer, o forecastOptions, out []seriesForecast) er
 			}
 			return strconv.FormatFloat(x, 'f', dec, 64)
 		}
-		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g, sigma %s\n",
+		chosen := ""
+		if o.autoLambda {
+			chosen = " (chosen from the data)"
+		}
+		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g%s, sigma %s\n",
 			displayKey(sf.key), sf.buckets, o.cal.Width(), o.cal.Zone(),
-			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, num(fc.Sigma))
+			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, chosen, num(fc.Sigma))
+		// The interval as a fan around the forecast, widest bounds outside;
+		// the running totals after a bar.
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(tw, "h\tperiod start\tforecast\t80% low\t80% high\t95% low\t95% high\tcumulative\tcum 95% low\tcum 95% high\t")
-		for i := range fc.Yhat {
+		fmt.Fprintln(tw, strings.Join(forecastTableHeader, "\t")+"\t")
+		for i := range fc.Forecast {
 			start := o.cal.Start(sf.lastIdx + int64(i) + 1).Format(time.RFC3339)
-			fmt.Fprintf(tw, "%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n", i+1, start, num(fc.Yhat[i]),
-				num(fc.Lo80[i]), num(fc.Hi80[i]), num(fc.Lo95[i]), num(fc.Hi95[i]),
-				num(fc.CumYhat[i]), num(fc.CumLo95[i]), num(fc.CumHi95[i]))
+			fmt.Fprintf(tw, "%d\t%s\t%s\t%s\t%s\t%s\t%s\t|\t%s\t%s\t%s\t\n", i+1, start,
+				num(fc.Lower95[i]), num(fc.Lower80[i]), num(fc.Forecast[i]), num(fc.Upper80[i]), num(fc.Upper95[i]),
+				num(fc.CumLower95[i]), num(fc.CumForecast[i]), num(fc.CumUpper95[i]))
 		}
 		if err := tw.Flush(); err != nil {
 			return err

@@ -86,9 +86,9 @@ func TestForecastBakeryCSV(t *testing.T) {
 		t.Errorf("first row %v", first)
 	}
 	for _, r := range recs[1:] {
-		lo95, yhat, hi95 := parseNum(t, r[6]), parseNum(t, r[3]), parseNum(t, r[7])
-		if !(lo95 < yhat && yhat < hi95) {
-			t.Errorf("row %v: yhat outside its 95%% interval", r)
+		lower95, forecast, upper95 := parseNum(t, r[6]), parseNum(t, r[3]), parseNum(t, r[7])
+		if !(lower95 < forecast && forecast < upper95) {
+			t.Errorf("row %v: forecast outside its 95%% interval", r)
 		}
 	}
 }
@@ -155,14 +155,14 @@ func TestForecastMatchesEstimator(t *testing.T) {
 			for l, r := range rows {
 				// The CSV prints the shortest text that reads back as the
 				// same float64, so the values compare exactly.
-				if got := parseNum(t, r[3]); got != fc.Yhat[l] {
-					t.Errorf("empty=%s series %s h=%d: yhat %v, estimator %v", empty, key, l+1, got, fc.Yhat[l])
+				if got := parseNum(t, r[3]); got != fc.Forecast[l] {
+					t.Errorf("empty=%s series %s h=%d: forecast %v, estimator %v", empty, key, l+1, got, fc.Forecast[l])
 				}
-				if got := parseNum(t, r[8]); got != fc.CumYhat[l] {
-					t.Errorf("empty=%s series %s h=%d: cum_yhat %v, estimator %v", empty, key, l+1, got, fc.CumYhat[l])
+				if got := parseNum(t, r[8]); got != fc.CumForecast[l] {
+					t.Errorf("empty=%s series %s h=%d: cum_forecast %v, estimator %v", empty, key, l+1, got, fc.CumForecast[l])
 				}
-				if r[7] != "" && parseNum(t, r[7]) != fc.Hi95[l] {
-					t.Errorf("empty=%s series %s h=%d: hi95 %s, estimator %v", empty, key, l+1, r[7], fc.Hi95[l])
+				if r[7] != "" && parseNum(t, r[7]) != fc.Upper95[l] {
+					t.Errorf("empty=%s series %s h=%d: upper95 %s, estimator %v", empty, key, l+1, r[7], fc.Upper95[l])
 				}
 				if r[11] != asOf {
 					t.Errorf("series %s: as_of %s, want %s", key, r[11], asOf)
@@ -175,10 +175,11 @@ func TestForecastMatchesEstimator(t *testing.T) {
 		}
 	}
 
-	// --lambda auto chooses lambda per series exactly as SearchLambda does.
-	out, stderr, err := runForecast(t, "--csv", path, "--tz", "Europe/Berlin", "--lambda", "auto", "--horizon", "1", "--format", "csv")
+	// Without --lambda, lambda is chosen per series exactly as SearchLambda
+	// does.
+	out, stderr, err := runForecast(t, "--csv", path, "--tz", "Europe/Berlin", "--horizon", "1", "--format", "csv")
 	if err != nil {
-		t.Fatalf("forecast --lambda auto: %v\n%s", err, stderr)
+		t.Fatalf("forecast without --lambda: %v\n%s", err, stderr)
 	}
 	res, err := estimator.SearchLambda(spec, [][]float64{want["a"]}, estimator.SearchOptions{})
 	if err != nil {
@@ -195,8 +196,8 @@ func TestForecastMatchesEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	recs := readCSVOutput(t, out)
-	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Yhat[0] {
-		t.Errorf("lambda auto: row %v, estimator yhat %v (lambda %v)", recs[1], fc.Yhat[0], res.Lambda)
+	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Forecast[0] {
+		t.Errorf("lambda chosen from the data: row %v, estimator forecast %v (lambda %v)", recs[1], fc.Forecast[0], res.Lambda)
 	}
 }
 
@@ -209,7 +210,7 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 	// lambda 0.95 the weight T = 1 + 0.95 is below p, so there is no
 	// residual variance and no interval. Series "one" has a single point.
 	body := "time,value,key\n2026-02-01,5,two\n2026-02-02,7,two\n2026-02-01,3,one\n"
-	out, stderr, err := runForecast(t, "--csv", writeFile(t, "few.csv", body), "--format", "json", "--horizon", "2")
+	out, stderr, err := runForecast(t, "--csv", writeFile(t, "few.csv", body), "--lambda", "0.95", "--format", "json", "--horizon", "2")
 	if err != nil {
 		t.Fatalf("forecast: %v\n%s", err, stderr)
 	}
@@ -233,24 +234,24 @@ func TestForecastJSONAndNotReady(t *testing.T) {
 		if !slices.Equal(keys, wantKeys) {
 			t.Errorf("row keys %v, want %v", keys, wantKeys)
 		}
-		for _, k := range []string{"lo80", "hi80", "lo95", "hi95", "cum_lo95", "cum_hi95"} {
+		for _, k := range []string{"lower80", "upper80", "lower95", "upper95", "cum_lower95", "cum_upper95"} {
 			if r[k] != nil {
 				t.Errorf("%s = %v, want null while T <= p", k, r[k])
 			}
 		}
 		// A line through (0, 5) and (1, 7) goes on with slope 2: 9, then 11.
 		h := r["horizon"].(float64)
-		if y := r["yhat"].(float64); math.Abs(y-(7+2*h)) > 1e-9 {
-			t.Errorf("horizon %v: yhat %v, want %v", h, y, 7+2*h)
+		if y := r["forecast"].(float64); math.Abs(y-(7+2*h)) > 1e-9 {
+			t.Errorf("horizon %v: forecast %v, want %v", h, y, 7+2*h)
 		}
 	}
 	// CSV prints undefined bounds as empty fields.
-	out, _, err = runForecast(t, "--csv", writeFile(t, "few.csv", body), "--format", "csv", "--horizon", "1")
+	out, _, err = runForecast(t, "--csv", writeFile(t, "few.csv", body), "--lambda", "0.95", "--format", "csv", "--horizon", "1")
 	if err != nil {
 		t.Fatal(err)
 	}
 	if r := readCSVOutput(t, out)[1]; r[4] != "" || r[7] != "" || r[3] == "" {
-		t.Errorf("csv row %v: want empty bounds and a yhat", r)
+		t.Errorf("csv row %v: want empty bounds and a forecast", r)
 	}
 }
 
@@ -270,6 +271,37 @@ func TestForecastTable(t *testing.T) {
 		if !strings.Contains(out, want) {
 			t.Errorf("table does not contain %q:\n%s", want, out)
 		}
+	}
+	// The header: steps ahead, the bucket, the fan of bounds around the
+	// forecast (95 % outside, 80 % inside), a bar, then the running totals;
+	// every row has its numbers in that order and the bar in its column.
+	var header string
+	for i, l := range lines {
+		if strings.HasPrefix(l, "series ") {
+			header = lines[i+1]
+			row := strings.Fields(lines[i+2])
+			if len(row) != len(forecastTableHeader) || row[0] != "1" || row[7] != "|" {
+				t.Fatalf("first row %q, want %d fields with the bar in column 8", lines[i+2], len(forecastTableHeader))
+			}
+			var v [10]float64
+			for j, k := range []int{2, 3, 4, 5, 6, 8, 9, 10} {
+				v[j] = parseNum(t, row[k])
+			}
+			if !(v[0] < v[1] && v[1] < v[2] && v[2] < v[3] && v[3] < v[4]) {
+				t.Errorf("row %v: bounds are not a fan lower95 < lower80 < forecast < upper80 < upper95", row)
+			}
+			if !(v[5] < v[6] && v[6] < v[7]) || v[6] != v[2] {
+				t.Errorf("row %v: cumulative columns are not cum_lower95 < cum_forecast < cum_upper95 with cum_forecast = forecast at step 1", row)
+			}
+			break
+		}
+	}
+	if got := strings.Fields(header); !slices.Equal(got, []string{"ahead", "period", "start", "lower95", "lower80", "forecast", "upper80", "upper95",
+		"|", "cum_lower95", "cum_forecast", "cum_upper95"}) {
+		t.Errorf("header %q", header)
+	}
+	if header != strings.ToLower(header) {
+		t.Errorf("header %q is not lower case", header)
 	}
 }
 
@@ -297,7 +329,8 @@ func TestForecastBadInput(t *testing.T) {
 		{"bad zone", good, []string{"--tz", "CET"}, []string{"--tz", "Europe/Berlin"}},
 		{"bad agg", good, []string{"--agg", "median"}, []string{"--agg", "sum, mean"}},
 		{"bad empty", good, []string{"--empty", "skip"}, []string{"--empty", "zero", "gap"}},
-		{"bad lambda", good, []string{"--lambda", "high"}, []string{"--lambda", "0.95, or auto"}},
+		{"bad lambda", good, []string{"--lambda", "high"}, []string{"--lambda", "0.95", "leave --lambda out"}},
+		{"lambda auto is gone", good, []string{"--lambda", "auto"}, []string{`--lambda "auto" is not a number`, "leave --lambda out"}},
 		{"lambda out of range", good, []string{"--lambda", "1.3"}, []string{"lambda 1.3", "(0, 1]"}},
 		{"period without harmonics", good, []string{"--period", "7"}, []string{"--harmonics", "1 to 3"}},
 		{"bad format", good, []string{"--format", "xml"}, []string{"--format", "table, csv or json"}},

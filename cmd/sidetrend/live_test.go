@@ -64,9 +64,9 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 		sql   string
 		state *estimator.State
 	}{
-		{"stored state", `SELECT horizon, yhat, lo95, hi95 FROM sidetrend_live.forecast
+		{"stored state", `SELECT horizon, forecast, lower95, upper95 FROM sidetrend_live.forecast
 			WHERE tracker = 'sales' AND series_key = 'north' AND horizon <= 400 ORDER BY horizon`, stored},
-		{"what-if lambda 0.8", `SELECT horizon, yhat, lo95, hi95 FROM sidetrend_live.forecast
+		{"what-if lambda 0.8", `SELECT horizon, forecast, lower95, upper95 FROM sidetrend_live.forecast
 			WHERE tracker = 'sales' AND series_key = 'north' AND lambda = 0.8 AND horizon <= 400 ORDER BY horizon`, refit},
 	} {
 		fc, err := c.state.Forecast(400)
@@ -78,8 +78,8 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 			t.Fatalf("%s: %v", c.name, err)
 		}
 		type row struct {
-			H            int
-			Yhat, Lo, Hi float64
+			H                int
+			Forecast, Lo, Hi float64
 		}
 		got, err := pgx.CollectRows(rows, pgx.RowToStructByPos[row])
 		if err != nil {
@@ -91,7 +91,7 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 		for i, r := range got {
 			// Same estimator, same state: equal up to the float8 text
 			// round trip through postgres_fdw (exact with extra_float_digits 3).
-			for _, v := range [][2]float64{{r.Yhat, fc.Yhat[i]}, {r.Lo, fc.Lo95[i]}, {r.Hi, fc.Hi95[i]}} {
+			for _, v := range [][2]float64{{r.Forecast, fc.Forecast[i]}, {r.Lo, fc.Lower95[i]}, {r.Hi, fc.Upper95[i]}} {
 				if !scalar.EqualWithinAbsOrRel(v[0], v[1], 0, 1e-15) {
 					t.Fatalf("%s: horizon %d: %v, want %v", c.name, r.H, v[0], v[1])
 				}

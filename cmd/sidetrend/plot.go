@@ -118,8 +118,8 @@ type chartData struct {
 	FitT []time.Time // one-step forecasts of the scored buckets
 	FitY []float64
 
-	FcT                          []time.Time
-	Yhat, Lo80, Hi80, Lo95, Hi95 []float64
+	FcT                                          []time.Time
+	Forecast, Lower80, Upper80, Lower95, Upper95 []float64
 
 	// Trend is the slope drawn as a segment through the level at the newest
 	// bucket: (TrendT[0], TrendY[0]) to (TrendT[1], TrendY[1]).
@@ -181,7 +181,7 @@ func buildChart(d *pgsync.SeriesData, from time.Time) (*chartData, error) {
 		}
 		cd.ObsT, cd.ObsY = append(cd.ObsT, d.Starts[i]), append(cd.ObsY, y)
 		if step.Scored {
-			cd.FitT, cd.FitY = append(cd.FitT, d.Starts[i]), append(cd.FitY, step.Yhat)
+			cd.FitT, cd.FitY = append(cd.FitT, d.Starts[i]), append(cd.FitY, step.Forecast)
 		}
 	}
 	if len(cd.ObsT) == 0 {
@@ -209,15 +209,18 @@ func buildChart(d *pgsync.SeriesData, from time.Time) (*chartData, error) {
 	for l := 1; l <= t.Horizon; l++ {
 		cd.FcT = append(cd.FcT, cal.Start(d.LastIndex+int64(l)))
 	}
-	cd.Yhat, cd.Lo80, cd.Hi80, cd.Lo95, cd.Hi95 = fc.Yhat, fc.Lo80, fc.Hi80, fc.Lo95, fc.Hi95
+	cd.Forecast, cd.Lower80, cd.Upper80, cd.Lower95, cd.Upper95 = fc.Forecast, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95
 	sl, err := st.Slope()
 	if err != nil {
 		return nil, fmt.Errorf("slope %q/%q: %w", t.Name, d.Key, err)
 	}
 	tstat := sl.T()
 	cd.TrendLabel = fmt.Sprintf("trend %+.3g/%s (t = %.1f)", sl.Slope, unit, tstat)
-	cd.Subtitle = fmt.Sprintf("as of %s: %s; %d-%s forecast with 80 %% and 95 %% prediction intervals",
-		asOf, cd.TrendLabel, t.Horizon, unit)
+	bands := "with 80 % and 95 % prediction intervals"
+	if bandXYs(cd.FcT, cd.Lower95, cd.Upper95) == nil {
+		bands = "without intervals yet (too few points)"
+	}
+	cd.Subtitle = fmt.Sprintf("as of %s: %s; %d-%s forecast %s", asOf, cd.TrendLabel, t.Horizon, unit, bands)
 	// The segment spans one horizon on each side of the newest bucket.
 	k := int64(t.Horizon)
 	cd.TrendT = [2]time.Time{cal.Start(d.LastIndex - k), cal.Start(d.LastIndex + k)}
@@ -251,25 +254,138 @@ func bucketUnit(w calendar.Width) string {
 	}
 }
 
-// Chart colours: dark grey points, a blue fitted line, an orange forecast
-// with its bands in lighter shades, a green trend segment.
+// Chart palette, chosen for sidetrend rather than taken from a plotting
+// library: slate ink for what happened, a muted teal for what the model
+// said one bucket ahead, one plum hue for the forecast and both of its
+// bands (the bands are the same plum, translucent, so the 80 % band shows
+// darker where it lies inside the 95 % one), and ochre for the trend.
 var (
-	colObserved = color.RGBA{R: 70, G: 70, B: 70, A: 255}
-	colFitted   = color.RGBA{R: 31, G: 119, B: 180, A: 255}
-	colForecast = color.RGBA{R: 214, G: 93, B: 14, A: 255}
-	colBand80   = color.RGBA{R: 243, G: 166, B: 110, A: 255}
-	colBand95   = color.RGBA{R: 251, G: 218, B: 190, A: 255}
-	colTrend    = color.RGBA{R: 44, G: 140, B: 60, A: 255}
+	colObserved = color.RGBA{R: 0x3a, G: 0x47, B: 0x50, A: 0xff} // slate
+	colFitted   = color.RGBA{R: 0x4a, G: 0x8f, B: 0x8c, A: 0xff} // muted teal
+	colForecast = color.RGBA{R: 0x6b, G: 0x2d, B: 0x5c, A: 0xff} // plum
+	colTrend    = color.RGBA{R: 0xb3, G: 0x80, B: 0x2a, A: 0xff} // ochre
+	colGrid     = color.RGBA{R: 0xe4, G: 0xe1, B: 0xdc, A: 0xff} // warm light grey
 )
+
+// Band fills: the forecast's plum at two opacities (premultiplied alpha,
+// as image/color wants). Drawn nested, 95 % first, the 80 % band on top
+// adds to it.
+var (
+	colBand95 = translucent(colForecast, 0.16)
+	colBand80 = translucent(colForecast, 0.22)
+)
+
+func translucent(c color.RGBA, a float64) color.RGBA {
+	f := func(v uint8) uint8 { return uint8(math.Round(float64(v) * a)) }
+	return color.RGBA{R: f(c.R), G: f(c.G), B: f(c.B), A: uint8(math.Round(255 * a))}
+}
 
 // legendWidth is the strip right of the plot that holds the legend, so
 // that it never covers data.
-const legendWidth = 4.2 * vg.Centimeter
+const legendWidth = 5.4 * vg.Centimeter
+
+// bandXYs is the outline of the band between lo and hi over the buckets
+// where both bounds are finite: along hi forwards, back along lo. It is
+// nil when fewer than two buckets have both (no interval yet: the residual
+// variance needs more points than the model has terms).
+func bandXYs(ts []time.Time, lo, hi []float64) plotter.XYs {
+	var keep []int
+	for i := range ts {
+		if finite(lo[i]) && finite(hi[i]) {
+			keep = append(keep, i)
+		}
+	}
+	if len(keep) < 2 {
+		return nil
+	}
+	xy := make(plotter.XYs, 0, 2*len(keep))
+	for _, i := range keep {
+		xy = append(xy, plotter.XY{X: unix(ts[i]), Y: hi[i]})
+	}
+	for k := len(keep) - 1; k >= 0; k-- {
+		i := keep[k]
+		xy = append(xy, plotter.XY{X: unix(ts[i]), Y: lo[i]})
+	}
+	return xy
+}
+
+func finite(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+
+// yRange is the value axis: every finite value the chart draws (points,
+// one-step forecasts, forecast, both bands, the trend segment) with 6 % of
+// the span free above and below, so nothing touches or crosses the frame.
+func yRange(cd *chartData) (lo, hi float64) {
+	lo, hi = math.Inf(1), math.Inf(-1)
+	for _, ys := range [][]float64{cd.ObsY, cd.FitY, cd.Forecast, cd.Lower80, cd.Upper80, cd.Lower95, cd.Upper95} {
+		for _, y := range ys {
+			if finite(y) {
+				lo, hi = min(lo, y), max(hi, y)
+			}
+		}
+	}
+	if len(cd.FcT) > 0 {
+		for _, y := range cd.TrendY {
+			if finite(y) {
+				lo, hi = min(lo, y), max(hi, y)
+			}
+		}
+	}
+	if lo > hi { // nothing finite: any range will do
+		return 0, 1
+	}
+	pad := 0.06 * (hi - lo)
+	if pad == 0 {
+		pad = max(math.Abs(hi)*0.1, 1)
+	}
+	return lo - pad, hi + pad
+}
+
+// xRange is the time axis: from the first point to the last forecast (or
+// trend end), at least four buckets wide so that a series with one or two
+// points still gets distinct tick labels, with a little room at the right.
+func xRange(cd *chartData) (lo, hi float64) {
+	first, last := cd.ObsT[0], cd.ObsT[len(cd.ObsT)-1]
+	for _, ts := range [][]time.Time{cd.FcT} {
+		if len(ts) > 0 && ts[len(ts)-1].After(last) {
+			last = ts[len(ts)-1]
+		}
+	}
+	if len(cd.FcT) > 0 && cd.TrendT[1].After(last) {
+		last = cd.TrendT[1]
+	}
+	if len(cd.FcT) > 0 && cd.TrendT[0].Before(first) && !cd.TrendT[0].IsZero() {
+		first = cd.TrendT[0]
+	}
+	lo, hi = unix(first), unix(last)
+	bucket := bucketSeconds(cd.Step)
+	if hi-lo < 4*bucket {
+		mid := (lo + hi) / 2
+		lo, hi = mid-2*bucket, mid+2*bucket
+	}
+	return lo, hi + (hi-lo)*0.01
+}
+
+// bucketSeconds is the nominal length of a bucket in seconds (a month as
+// 30.44 days): only for the axis' minimum width.
+func bucketSeconds(w calendar.Width) float64 {
+	return float64(w.Months)*30.44*86400 + float64(w.Days)*86400 + float64(w.Micros)/1e6
+}
 
 // writeChart draws cd into a PNG of wpx by hpx pixels at path.
+//
+// What is drawn, bottom to top: the 95 % and 80 % bands as nested
+// translucent plum fans; the one-step forecasts as a thin teal step line
+// (each value held over its bucket, as the model issued it for that
+// bucket); the observations as small hollow slate rings, so the line
+// under them stays readable; the trend as a thin dashed ochre segment;
+// and last the forecast as a solid plum line, thicker than the trend, so
+// it stays visible where the two run together.
 func writeChart(cd *chartData, path string, wpx, hpx int) error {
 	if wpx < 400 || hpx < 250 || wpx > 10000 || hpx > 10000 {
 		return fmt.Errorf("chart size %dx%d is out of range: use a width of 400 to 10000 and a height of 250 to 10000 pixels", wpx, hpx)
+	}
+	if len(cd.ObsT) == 0 {
+		return errors.New("chart: no observed bucket to draw")
 	}
 	p := plot.New()
 	p.Title.Text = cd.Title
@@ -278,90 +394,111 @@ func writeChart(cd *chartData, path string, wpx, hpx int) error {
 	}
 	p.Title.TextStyle.Font.Size = vg.Points(12)
 	p.Title.Padding = vg.Points(8)
-	p.X.Label.Text = "bucket start (" + cd.Loc.String() + ")"
+	p.X.Label.Text = "start of bucket (" + cd.Loc.String() + ")"
 	p.Y.Label.Text = cd.YLabel
-	p.X.Tick.Marker = plot.TimeTicks{
+	p.X.Tick.Marker = uniqueLabels{plot.TimeTicks{
 		Ticker: dateTicker{loc: cd.Loc, step: cd.Step},
 		Format: tickFormat(cd.Step),
 		Time:   func(x float64) time.Time { return time.Unix(int64(math.Round(x)), 0).In(cd.Loc) },
-	}
+	}}
 	p.Y.Tick.Marker = valueTicker{}
-	p.Add(plotter.NewGrid())
+	grid := plotter.NewGrid()
+	grid.Vertical.Color, grid.Horizontal.Color = colGrid, colGrid
+	grid.Vertical.Width, grid.Horizontal.Width = vg.Points(0.6), vg.Points(0.6)
+	p.Add(grid)
 	legend := plot.NewLegend()
 	legend.Left, legend.Top = true, true
 	legend.TextStyle.Font.Size = vg.Points(10)
 	legend.Padding = vg.Points(4)
 	legend.ThumbnailWidth = vg.Points(22)
 
+	// Legend rows, in reading order: what happened, what the model said,
+	// the forecast and its bands, the trend. Absent elements are nil.
+	var obsL, fitL, fcL, b80L, b95L, trL plot.Thumbnailer
 	if len(cd.FcT) > 0 {
-		band := func(ts []time.Time, lo, hi []float64, c color.Color) (*plotter.Polygon, error) {
-			xy := make(plotter.XYs, 0, 2*len(ts))
-			for i := range ts {
-				xy = append(xy, plotter.XY{X: unix(ts[i]), Y: hi[i]})
-			}
-			for i := len(ts) - 1; i >= 0; i-- {
-				xy = append(xy, plotter.XY{X: unix(ts[i]), Y: lo[i]})
+		for _, b := range []struct {
+			lo, hi []float64
+			col    color.Color
+			label  string
+		}{
+			{cd.Lower95, cd.Upper95, colBand95, "95 %"},
+			{cd.Lower80, cd.Upper80, colBand80, "80 %"},
+		} {
+			xy := bandXYs(cd.FcT, b.lo, b.hi)
+			if xy == nil {
+				continue
 			}
 			poly, err := plotter.NewPolygon(xy)
 			if err != nil {
-				return nil, err
+				return fmt.Errorf("chart: %s: %w", b.label, err)
 			}
-			poly.Color = c
+			poly.Color = b.col
 			poly.LineStyle.Width = 0
-			return poly, nil
+			p.Add(poly)
+			if b.label == "80 %" {
+				b80L = poly
+			} else {
+				b95L = poly
+			}
 		}
-		b95, err := band(cd.FcT, cd.Lo95, cd.Hi95, colBand95)
+	}
+
+	if fitXY := timeXYs(cd.FitT, cd.FitY); len(fitXY) > 0 {
+		fit, err := plotter.NewLine(fitXY)
 		if err != nil {
-			return fmt.Errorf("chart: 95 %% band: %w", err)
+			return fmt.Errorf("chart: one-step forecasts: %w", err)
 		}
-		b80, err := band(cd.FcT, cd.Lo80, cd.Hi80, colBand80)
-		if err != nil {
-			return fmt.Errorf("chart: 80 %% band: %w", err)
-		}
-		p.Add(b95, b80)
-		legend.Add("95 % interval", b95)
-		legend.Add("80 % interval", b80)
+		fit.Color, fit.Width = colFitted, vg.Points(1)
+		fit.StepStyle = plotter.MidStep
+		p.Add(fit)
+		fitL = fit
 	}
 
 	obs, err := plotter.NewScatter(timeXYs(cd.ObsT, cd.ObsY))
 	if err != nil {
-		return fmt.Errorf("chart: observed points: %w", err)
+		return fmt.Errorf("chart: observed values: %w", err)
 	}
 	obs.GlyphStyle.Color = colObserved
-	obs.GlyphStyle.Radius = vg.Points(1.8)
-	obs.GlyphStyle.Shape = draw.CircleGlyph{}
+	obs.GlyphStyle.Radius = vg.Points(2.5)
+	obs.GlyphStyle.Shape = draw.RingGlyph{}
 	p.Add(obs)
-	legend.Add("observed", obs)
+	obsL = obs
 
-	if len(cd.FitT) > 0 {
-		fit, err := plotter.NewLine(timeXYs(cd.FitT, cd.FitY))
-		if err != nil {
-			return fmt.Errorf("chart: fitted values: %w", err)
-		}
-		fit.Color, fit.Width = colFitted, vg.Points(1.2)
-		p.Add(fit)
-		legend.Add("one-step forecast", fit)
-	}
-	if len(cd.FcT) > 0 {
-		fc, err := plotter.NewLine(timeXYs(cd.FcT, cd.Yhat))
-		if err != nil {
-			return fmt.Errorf("chart: forecast: %w", err)
-		}
-		fc.Color, fc.Width = colForecast, vg.Points(2)
-		p.Add(fc)
-		legend.Add("forecast", fc)
-
+	if fcXY := timeXYs(cd.FcT, cd.Forecast); len(fcXY) > 0 {
 		tr, err := plotter.NewLine(timeXYs(cd.TrendT[:], cd.TrendY[:]))
 		if err != nil {
 			return fmt.Errorf("chart: trend: %w", err)
 		}
-		tr.Color, tr.Width = colTrend, vg.Points(2)
-		tr.Dashes = []vg.Length{vg.Points(6), vg.Points(3)}
+		tr.Color, tr.Width = colTrend, vg.Points(1.3)
+		tr.Dashes = []vg.Length{vg.Points(7), vg.Points(2), vg.Points(1.5), vg.Points(2)}
 		p.Add(tr)
-		legend.Add("trend (level, slope)", tr)
+
+		fc, err := plotter.NewLine(fcXY)
+		if err != nil {
+			return fmt.Errorf("chart: forecast: %w", err)
+		}
+		fc.Color, fc.Width = colForecast, vg.Points(2.4)
+		p.Add(fc)
+		fcL, trL = fc, tr
 	}
-	// Leave a little room right of the last forecast.
-	p.X.Max += (p.X.Max - p.X.Min) * 0.01
+	for _, e := range []struct {
+		label string
+		th    plot.Thumbnailer
+	}{
+		{"observed value", obsL},
+		{"one-step forecast", fitL},
+		{"forecast", fcL},
+		{"80 % prediction interval", b80L},
+		{"95 % prediction interval", b95L},
+		{"trend now (level, slope)", trL},
+	} {
+		if e.th != nil {
+			legend.Add(e.label, e.th)
+		}
+	}
+
+	p.X.Min, p.X.Max = xRange(cd)
+	p.Y.Min, p.Y.Max = yRange(cd)
 
 	w := vg.Length(wpx) * vg.Inch / chartDPI
 	h := vg.Length(hpx) * vg.Inch / chartDPI
@@ -389,6 +526,26 @@ func writeChart(cd *chartData, path string, wpx, hpx int) error {
 		return fmt.Errorf("chart: write %s: %w", path, err)
 	}
 	return f.Close()
+}
+
+// uniqueLabels keeps the first of major ticks whose labels read the same
+// (two ticks within one day under a day format, say) and turns the others
+// into minor ticks, so no label repeats.
+type uniqueLabels struct{ plot.Ticker }
+
+func (u uniqueLabels) Ticks(min, max float64) []plot.Tick {
+	ticks := u.Ticker.Ticks(min, max)
+	seen := map[string]bool{}
+	for i, tk := range ticks {
+		if tk.Label == "" {
+			continue
+		}
+		if seen[tk.Label] {
+			ticks[i].Label = ""
+		}
+		seen[tk.Label] = true
+	}
+	return ticks
 }
 
 func unix(t time.Time) float64 { return float64(t.Unix()) }

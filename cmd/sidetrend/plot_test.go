@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"gonum.org/v1/gonum/floats/scalar"
+	"gonum.org/v1/plot"
 
 	"github.com/sidetrend/sidetrend/calendar"
 	"github.com/sidetrend/sidetrend/pgsync"
@@ -65,7 +66,7 @@ func TestChartMatchesViews(t *testing.T) {
 		t.Errorf("%d fitted values for %d buckets", len(cd.FitT), len(cd.ObsT))
 	}
 
-	rows, err := pool.Query(ctx, `SELECT period_start, yhat, lo80, hi80, lo95, hi95 FROM sidetrend.forecasts
+	rows, err := pool.Query(ctx, `SELECT period_start, forecast, lower80, upper80, lower95, upper95 FROM sidetrend.forecasts
 		WHERE tracker = 'sales' AND series_key = 'north' ORDER BY horizon`)
 	if err != nil {
 		t.Fatal(err)
@@ -76,8 +77,8 @@ func TestChartMatchesViews(t *testing.T) {
 	const tol = 1e-12
 	for rows.Next() {
 		var at time.Time
-		var y, lo80, hi80, lo95, hi95 float64
-		if err := rows.Scan(&at, &y, &lo80, &hi80, &lo95, &hi95); err != nil {
+		var y, lower80, upper80, lower95, upper95 float64
+		if err := rows.Scan(&at, &y, &lower80, &upper80, &lower95, &upper95); err != nil {
 			t.Fatal(err)
 		}
 		if n >= len(cd.FcT) {
@@ -89,7 +90,7 @@ func TestChartMatchesViews(t *testing.T) {
 		for _, c := range []struct {
 			name      string
 			got, want float64
-		}{{"yhat", cd.Yhat[n], y}, {"lo80", cd.Lo80[n], lo80}, {"hi80", cd.Hi80[n], hi80}, {"lo95", cd.Lo95[n], lo95}, {"hi95", cd.Hi95[n], hi95}} {
+		}{{"forecast", cd.Forecast[n], y}, {"lower80", cd.Lower80[n], lower80}, {"upper80", cd.Upper80[n], upper80}, {"lower95", cd.Lower95[n], lower95}, {"upper95", cd.Upper95[n], upper95}} {
 			if !scalar.EqualWithinAbsOrRel(c.got, c.want, tol, tol) {
 				t.Errorf("horizon %d %s: chart %v, view %v", n+1, c.name, c.got, c.want)
 			}
@@ -180,6 +181,120 @@ func TestValueTicker(t *testing.T) {
 		}
 		if strings.Join(got, " ") != strings.Join(c.want, " ") {
 			t.Errorf("ticks of [%v, %v]: %v, want %v", c.lo, c.hi, got, c.want)
+		}
+	}
+}
+
+// fewPointsChart is a ready daily series of three points whose forecast
+// has no interval yet (the bounds are NaN, as the estimator returns them
+// while T <= p), with a trend segment along the forecast.
+func fewPointsChart() *chartData {
+	day0 := time.Date(2025, 3, 1, 0, 0, 0, 0, time.UTC)
+	cd := &chartData{Title: "few", YLabel: "sum per day", Loc: time.UTC, Step: calendar.Width{Days: 1}}
+	for i, y := range []float64{10, 12, 14} {
+		cd.ObsT = append(cd.ObsT, day0.AddDate(0, 0, i))
+		cd.ObsY = append(cd.ObsY, y)
+	}
+	nan := math.NaN()
+	for l := 1; l <= 3; l++ {
+		cd.FcT = append(cd.FcT, day0.AddDate(0, 0, 2+l))
+		cd.Forecast = append(cd.Forecast, 14+2*float64(l))
+		cd.Lower80, cd.Upper80 = append(cd.Lower80, nan), append(cd.Upper80, nan)
+		cd.Lower95, cd.Upper95 = append(cd.Lower95, nan), append(cd.Upper95, nan)
+	}
+	cd.TrendT = [2]time.Time{day0.AddDate(0, 0, -1), day0.AddDate(0, 0, 5)}
+	cd.TrendY = [2]float64{8, 20}
+	return cd
+}
+
+// TestChartWithoutInterval draws a forecast whose bounds are not defined
+// yet: no bands, no error (it used to fail with "NaN data point").
+func TestChartWithoutInterval(t *testing.T) {
+	t.Parallel()
+	cd := fewPointsChart()
+	if xy := bandXYs(cd.FcT, cd.Lower95, cd.Upper95); xy != nil {
+		t.Errorf("band outline %v from NaN bounds, want none", xy)
+	}
+	if err := writeChart(cd, filepath.Join(t.TempDir(), "few.png"), 800, 400); err != nil {
+		t.Fatalf("chart without interval: %v", err)
+	}
+	// Bounds defined for only some horizons: the band covers those.
+	cd.Lower95[1], cd.Upper95[1], cd.Lower95[2], cd.Upper95[2] = 15, 21, 16, 24
+	if xy := bandXYs(cd.FcT, cd.Lower95, cd.Upper95); len(xy) != 4 {
+		t.Errorf("band outline %v, want the 4 corners of horizons 2 and 3", xy)
+	}
+	if err := writeChart(cd, filepath.Join(t.TempDir(), "part.png"), 800, 400); err != nil {
+		t.Fatalf("chart with a partial interval: %v", err)
+	}
+}
+
+// TestChartYRangeHoldsEverything checks that the value axis holds the
+// bands, the one-step forecasts and the trend with room to spare, so
+// nothing is cut at the top or bottom of the frame.
+func TestChartYRangeHoldsEverything(t *testing.T) {
+	t.Parallel()
+	cd := fewPointsChart()
+	cd.FitT, cd.FitY = cd.ObsT[1:], []float64{40, 11} // a wild one-step forecast
+	cd.Lower95 = []float64{-5, -7, -9}
+	cd.Upper95 = []float64{30, 33, 36}
+	cd.Lower80 = []float64{1, 0, -1}
+	cd.Upper80 = []float64{25, 27, 29}
+	cd.TrendY = [2]float64{8, 50}
+	lo, hi := yRange(cd)
+	// Drawn extremes: -9 (lower95 at horizon 3) and 50 (the trend's end).
+	if !(lo < -9 && hi > 50) {
+		t.Errorf("y range [%v, %v] does not hold [-9, 50] with room", lo, hi)
+	}
+	if pad := 0.06 * 59; math.Abs((-9-lo)-pad) > 1e-9 || math.Abs((hi-50)-pad) > 1e-9 {
+		t.Errorf("y range [%v, %v], want 6 %% of the span 59 free on each side", lo, hi)
+	}
+}
+
+// TestChartTickLabelsUnique checks that no x tick label repeats, for a
+// warming series of one and of two daily points (the axis is then a few
+// buckets wide) and for monthly and hourly buckets.
+func TestChartTickLabelsUnique(t *testing.T) {
+	t.Parallel()
+	day0 := time.Date(2025, 3, 1, 0, 0, 0, 0, time.UTC)
+	for _, c := range []struct {
+		name string
+		step calendar.Width
+		n    int
+	}{
+		{"one day", calendar.Width{Days: 1}, 1},
+		{"two days", calendar.Width{Days: 1}, 2},
+		{"two months", calendar.Width{Months: 1}, 2},
+		{"three hours", calendar.Width{Micros: 3600e6}, 3},
+	} {
+		cd := &chartData{Loc: time.UTC, Step: c.step, Subtitle: "no forecast yet: the model is warming up"}
+		t0 := day0
+		for i := 0; i < c.n; i++ {
+			cd.ObsT, cd.ObsY = append(cd.ObsT, t0), append(cd.ObsY, float64(i))
+			t0 = t0.AddDate(0, c.step.Months, c.step.Days).Add(time.Duration(c.step.Micros) * time.Microsecond)
+		}
+		lo, hi := xRange(cd)
+		marker := uniqueLabels{plot.TimeTicks{
+			Ticker: dateTicker{loc: cd.Loc, step: cd.Step},
+			Format: tickFormat(cd.Step),
+			Time:   func(x float64) time.Time { return time.Unix(int64(math.Round(x)), 0).In(cd.Loc) },
+		}}
+		seen := map[string]bool{}
+		labels := 0
+		for _, tk := range marker.Ticks(lo, hi) {
+			if tk.Label == "" {
+				continue
+			}
+			labels++
+			if seen[tk.Label] {
+				t.Errorf("%s: tick label %q repeats", c.name, tk.Label)
+			}
+			seen[tk.Label] = true
+		}
+		if labels < 2 {
+			t.Errorf("%s: %d labelled ticks on [%v, %v], want at least 2", c.name, labels, lo, hi)
+		}
+		if err := writeChart(cd, filepath.Join(t.TempDir(), "warm.png"), 600, 300); err != nil {
+			t.Errorf("%s: %v", c.name, err)
 		}
 	}
 }

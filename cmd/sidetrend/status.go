@@ -57,7 +57,7 @@ func writeStatusTable(w io.Writer, st *pgsync.Status) error {
 		return nil
 	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, "TRACKER\tSOURCE\tBUCKET\tMODEL\tSTATUS\tBACKFILLED\tREADY\tWARMING\tREPLAY\tPENDING\tLAG\tREJECTS")
+	fmt.Fprintln(tw, "tracker\tsource\tbucket\tmodel\tstatus\tbackfilled\tready\twarming\treplay\tpending\tlag\trejects")
 	for _, t := range st.Trackers {
 		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%s\t%d\n",
 			t.Name, t.Source, t.Bucket, t.Model, t.Status, yesNo(t.Backfilled),

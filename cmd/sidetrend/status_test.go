@@ -80,7 +80,7 @@ func TestStatus(t *testing.T) {
 		t.Fatalf("status: %v\n%s", err, out)
 	}
 	t.Logf("status:\n%s", out)
-	for _, s := range []string{"1 trackers, 2 series (2 ready, 0 warming), 1 pending changes", "TRACKER  SOURCE", "sales    public.sales",
+	for _, s := range []string{"1 trackers, 2 series (2 ready, 0 warming), 1 pending changes", "tracker  source", "sales    public.sales",
 		"Last errors:", `sales, series "south"`, "value too large"} {
 		if !strings.Contains(out, s) {
 			t.Errorf("status table lacks %q:\n%s", s, out)

@@ -67,7 +67,7 @@ for case, vals in ref.items():
         yh = float(f @ theta)
         cum += f
         cumy += yh
-        got[("yhat", l)] = yh
+        got[("forecast", l)] = yh
         got[("se", l)] = sigma * math.sqrt(1 + f @ V @ f)
         got[("cum", l)] = cumy
         got[("cum_se", l)] = sigma * math.sqrt(l + cum @ V @ cum)

@@ -90,10 +90,10 @@ for (c in cases) for (n in c$n) {
   cumy <- 0
   for (l in 1:H) {
     f <- as.numeric(regressors(l, c$degree, c$period, c$harmonics))
-    yhat <- sum(f * theta)
+    forecast <- sum(f * theta)
     cum <- cum + f
-    cumy <- cumy + yhat
-    add(id, c, n, "yhat", l, yhat)
+    cumy <- cumy + forecast
+    add(id, c, n, "forecast", l, forecast)
     add(id, c, n, "se", l, sigma * sqrt(1 + drop(t(f) %*% V %*% f)))
     add(id, c, n, "cum", l, cumy)
     add(id, c, n, "cum_se", l, sigma * sqrt(l + drop(t(cum) %*% V %*% cum)))
