@@ -32,6 +32,8 @@
 --   defaults to 100,000 buckets, at most 1000 years; track(span => ...)
 --   takes up to 10000 years, the whole calendar). Rejects keep the
 --   tracked columns only, and the sidecar prunes them (prune_rejects).
+-- * Capture notifies only while no sidecar holds the lease in
+--   sidetrend.wake (see install_capture and pgsync's Runner).
 -- * Every tracker records its owner, the role that called track(). track,
 --   untrack, rebuild, tune and request_tune are SECURITY INVOKER wrappers that
 --   pass current_user to SECURITY DEFINER functions (_track_as and so on),
@@ -199,6 +201,17 @@ LANGUAGE sql STABLE SET search_path = pg_catalog, pg_temp
 RETURN (SELECT array_agg(a.atttypid::int ORDER BY a.attname) FROM pg_catalog.pg_attribute a
         WHERE a.attrelid = source AND a.attname = ANY (cols::name[]) AND NOT a.attisdropped);
 -- +goose StatementEnd
+
+-- The sidecar's lease: while a sidecar is awake it keeps awake_until a
+-- little in the future and reads the change log by itself, and capture
+-- statements skip pg_notify (see install_capture). NOTIFY wakes a sleeping
+-- sidecar. One row.
+CREATE TABLE IF NOT EXISTS sidetrend.wake (
+    id          int PRIMARY KEY DEFAULT 1 CHECK (id = 1),
+    awake_until timestamptz NOT NULL DEFAULT '-infinity'
+);
+INSERT INTO sidetrend.wake DEFAULT VALUES ON CONFLICT DO NOTHING;
+COMMENT ON TABLE sidetrend.wake IS 'One row: until awake_until a sidecar reads the change log by itself and capture triggers do not notify (a notifying commit takes a cluster-wide lock).';
 
 -- install_capture (re)creates the capture, backfill, recompute and truncate
 -- functions of one tracker and its triggers. It raises source_problem's
@@ -396,7 +409,16 @@ BEGIN
         WHERE NOT EXISTS (SELECT 1 FROM o WHERE (nw.k, nw.b, nw.n, nw.s, nw.mn, nw.mx, nw.lt, nw.lv)
                           IS NOT DISTINCT FROM (o.k, o.b, o.n, o.s, o.mn, o.mx, o.lt, o.lv));
     END IF;
-    PERFORM pg_notify('sidetrend', %6$L);
+    -- Wake the sidecar only while it sleeps. While it is awake it holds a
+    -- lease (sidetrend.wake) and reads the log by itself; a commit that
+    -- notifies takes a cluster-wide lock until it is flushed, which capped
+    -- notifying commits at 2-3k/s. clock_timestamp(), not the statement's
+    -- start: the sidecar waits for the transactions in progress when its
+    -- lease ran out (pgsync, Runner), which are the ones that can have
+    -- seen it.
+    IF coalesce((SELECT w.awake_until FROM sidetrend.wake w), '-infinity') <= clock_timestamp() THEN
+        PERFORM pg_notify('sidetrend', %6$L);
+    END IF;
     RETURN NULL;
 END
 $tpl$, t.id, v_sel, v_valid, v_reason, v_json, t.id::text, v_lo, v_hi, v_cols, v_sig);

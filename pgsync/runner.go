@@ -179,9 +179,44 @@ func (r *Runner) loop(ctx context.Context, pool *pgxpool.Pool) {
 	}
 }
 
+// The lease (sidetrend.wake): while the sidecar is awake it keeps
+// awake_until up to leaseFor ahead and reads the change log by itself,
+// and capture statements skip pg_notify, whose commit-time lock capped
+// notifying commits at 2-3k/s for the whole cluster. A sidecar that found
+// nothing to do for idleAfter stops renewing the lease; once the lease has
+// run out and every transaction that was in progress then has ended (the
+// only ones that can have skipped the notification), it sleeps until
+// NOTIFY or the poll timer. Until then it reads the log's head every
+// fastPoll.
+const (
+	leaseFor  = time.Second
+	idleAfter = 250 * time.Millisecond
+	fastPoll  = 5 * time.Millisecond
+	// settleMax bounds the wait for transactions that were in progress
+	// when the lease ran out; one that commits later still is found by
+	// the poll timer.
+	settleMax = 10 * time.Second
+	// dueEvery is how often an awake sidecar folds buckets that the clock
+	// closed (a sleeping one does it on every wake-up and poll).
+	dueEvery = 250 * time.Millisecond
+)
+
+const (
+	leaseSQL = `UPDATE sidetrend.wake SET awake_until = greatest(awake_until, clock_timestamp() + $1::interval) RETURNING awake_until`
+	// headSQL: is there any change in the log (one index probe)?
+	headSQL = `SELECT EXISTS (SELECT 1 FROM sidetrend.changes ORDER BY id LIMIT 1)`
+	// settleSQL: has the lease run out, and have the transactions that
+	// were in progress at snapshot $2 all ended? ($2 NULL: take one now.)
+	settleSQL = `SELECT clock_timestamp() > $1::timestamptz,
+       coalesce($2::pg_snapshot, pg_current_snapshot())::text,
+       $2::pg_snapshot IS NOT NULL AND NOT EXISTS (
+           SELECT 1 FROM pg_snapshot_xip($2::pg_snapshot) x WHERE pg_xact_status(x) = 'in progress')`
+)
+
 // session holds one listening connection: LISTEN first, then catch up from
-// the log, then wait for a notification or the poll timer, repeatedly. It
-// returns on any connection error.
+// the log, stay awake while work comes (holding the lease), then settle and
+// sleep until a notification or the poll timer. It returns on any
+// connection error.
 func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer, healthy func()) error {
 	pconn, err := pool.Acquire(ctx)
 	if err != nil {
@@ -196,6 +231,10 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 	}
 	r.log.Info("listening", "channel", Channel)
 	for {
+		lease, err := r.renew(ctx, conn)
+		if err != nil {
+			return err
+		}
 		if err := syncer.CatchUp(ctx); err != nil {
 			return err
 		}
@@ -203,8 +242,22 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		if r.cfg.OnCaughtUp != nil {
 			r.cfg.OnCaughtUp(syncer.Stats())
 		}
+		lease, notified, err := r.awake(ctx, conn, syncer, lease)
+		if err != nil {
+			return err
+		}
+		if notified {
+			continue
+		}
+		woken, err := r.settle(ctx, conn, lease)
+		if err != nil {
+			return err
+		}
+		if woken {
+			continue
+		}
 		wait, cancel := context.WithTimeout(ctx, jitter(r.cfg.Poll))
-		_, err := conn.WaitForNotification(wait)
+		_, err = conn.WaitForNotification(wait)
 		cancel()
 		if err != nil && ctx.Err() != nil {
 			return ctx.Err()
@@ -212,20 +265,141 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		if err != nil && !errors.Is(err, context.DeadlineExceeded) {
 			return err
 		}
-		// Drain whatever else arrived so one catch-up answers them all.
+		if err := drainNotifications(ctx, conn); err != nil {
+			return err
+		}
+	}
+}
+
+// renew sets the lease leaseFor ahead and returns when it runs out.
+func (r *Runner) renew(ctx context.Context, conn *pgx.Conn) (time.Time, error) {
+	var until time.Time
+	if err := conn.QueryRow(ctx, leaseSQL, leaseFor).Scan(&until); err != nil {
+		return until, fmt.Errorf("renew the lease: %w", err)
+	}
+	return until, nil
+}
+
+// awake drains as changes come, renewing the lease, until nothing has come
+// for idleAfter. A notification (a new tracker, a rebuild, a tune request,
+// or a writer that found the lease run out) ends it early and is reported,
+// so that the caller runs a full catch-up. It returns when the lease runs
+// out.
+func (r *Runner) awake(ctx context.Context, conn *pgx.Conn, syncer *Syncer, lease time.Time) (time.Time, bool, error) {
+	lastWork, lastDue, lastCatchUp := time.Now(), time.Now(), time.Now()
+	for {
+		if time.Since(lastCatchUp) >= r.cfg.Poll {
+			// Trackers, checks and backfills, as a sleeping sidecar's poll does.
+			if err := syncer.CatchUp(ctx); err != nil {
+				return lease, false, err
+			}
+			lastCatchUp, lastDue = time.Now(), time.Now()
+		}
+		due := time.Since(lastDue) >= dueEvery
+		n, err := syncer.Drain(ctx, due)
+		if err != nil {
+			return lease, false, err
+		}
+		if due {
+			lastDue = time.Now()
+		}
+		if n > 0 {
+			lastWork = time.Now()
+			if r.cfg.OnCaughtUp != nil {
+				r.cfg.OnCaughtUp(syncer.Stats())
+			}
+		}
+		// Wait for the next change at the log's head.
 		for {
-			short, cancel := context.WithTimeout(ctx, time.Millisecond)
-			_, err := conn.WaitForNotification(short)
-			cancel()
-			if err != nil {
-				if ctx.Err() != nil {
-					return ctx.Err()
+			if time.Since(lastWork) >= idleAfter {
+				return lease, false, nil
+			}
+			if time.Until(lease) < leaseFor/2 {
+				if lease, err = r.renew(ctx, conn); err != nil {
+					return lease, false, err
 				}
-				if !errors.Is(err, context.DeadlineExceeded) {
-					return err
-				}
+			}
+			notified, any, err := r.pause(ctx, conn, fastPoll)
+			if err != nil || notified {
+				return lease, notified, err
+			}
+			if any || time.Since(lastDue) >= dueEvery {
 				break
 			}
+		}
+	}
+}
+
+// pause waits up to d for a notification; without one it reads whether the
+// log holds a change. It reports a notification and a change.
+func (r *Runner) pause(ctx context.Context, conn *pgx.Conn, d time.Duration) (notified, any bool, err error) {
+	wait, cancel := context.WithTimeout(ctx, d)
+	_, err = conn.WaitForNotification(wait)
+	cancel()
+	if err == nil {
+		return true, false, drainNotifications(ctx, conn)
+	}
+	if ctx.Err() != nil {
+		return false, false, ctx.Err()
+	}
+	if !errors.Is(err, context.DeadlineExceeded) {
+		return false, false, err
+	}
+	if err := conn.QueryRow(ctx, headSQL).Scan(&any); err != nil {
+		return false, false, fmt.Errorf("read the log's head: %w", err)
+	}
+	return false, any, nil
+}
+
+// settle is the way to sleep: it keeps reading the log's head, every
+// fastPoll at first and less often as it waits, until the lease has run
+// out and every transaction in progress at that moment has ended (or
+// settleMax has passed). It reports true when a notification or a change
+// woke it.
+func (r *Runner) settle(ctx context.Context, conn *pgx.Conn, lease time.Time) (bool, error) {
+	began, every := time.Now(), fastPoll
+	var snap *string
+	for time.Since(began) < settleMax {
+		var expired, done bool
+		var cur string
+		if err := conn.QueryRow(ctx, settleSQL, lease, snap).Scan(&expired, &cur, &done); err != nil {
+			return false, fmt.Errorf("wait for the lease to run out: %w", err)
+		}
+		if done {
+			// Their changes are committed now: one last look.
+			var any bool
+			if err := conn.QueryRow(ctx, headSQL).Scan(&any); err != nil {
+				return false, fmt.Errorf("read the log's head: %w", err)
+			}
+			return any, nil
+		}
+		if expired && snap == nil {
+			snap = &cur
+		}
+		notified, any, err := r.pause(ctx, conn, every)
+		if err != nil || notified || any {
+			return notified || any, err
+		}
+		every = min(2*every, 100*time.Millisecond)
+	}
+	return false, nil
+}
+
+// drainNotifications reads whatever else arrived, so one catch-up answers
+// them all.
+func drainNotifications(ctx context.Context, conn *pgx.Conn) error {
+	for {
+		short, cancel := context.WithTimeout(ctx, time.Millisecond)
+		_, err := conn.WaitForNotification(short)
+		cancel()
+		if err != nil {
+			if ctx.Err() != nil {
+				return ctx.Err()
+			}
+			if !errors.Is(err, context.DeadlineExceeded) {
+				return err
+			}
+			return nil
 		}
 	}
 }

@@ -1,0 +1,93 @@
+package pgsync
+
+import (
+	"context"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+)
+
+// TestWakeWithoutNotify: while a sidecar holds the lease in sidetrend.wake,
+// capture statements send no notification, and the sidecar still folds
+// their changes by reading the log itself; once the lease has run out, a
+// capture statement notifies, and a sleeping sidecar wakes on it. The poll
+// timer is an hour, so only these two ways can fold a change here.
+func TestWakeWithoutNotify(t *testing.T) {
+	t.Parallel()
+	pool, url := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE kiosk (at timestamptz, v float8)`)
+	exec(t, pool, `SELECT sidetrend.track('kiosk', 'at', 'v', degree => 0, horizon => 2)`)
+
+	listener, err := pgx.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer listener.Close(ctx)
+	if _, err := listener.Exec(ctx, `LISTEN `+pgx.Identifier{Channel}.Sanitize()); err != nil {
+		t.Fatal(err)
+	}
+	notifications := func() int {
+		n := 0
+		for {
+			wait, cancel := context.WithTimeout(ctx, 50*time.Millisecond)
+			_, err := listener.WaitForNotification(wait)
+			cancel()
+			if err != nil {
+				return n
+			}
+			n++
+		}
+	}
+
+	var drained atomic.Int64
+	caught := make(chan struct{}, 1)
+	r := NewRunner(url, RunnerConfig{Poll: time.Hour, TuneEvery: -1, OnCaughtUp: func(s Stats) {
+		drained.Store(s.Changes)
+		select {
+		case caught <- struct{}{}:
+		default:
+		}
+	}}, nil)
+	if err := r.Start(ctx); err != nil {
+		t.Fatal(err)
+	}
+	defer r.Stop()
+	waitDrained := func(want int64, what string) {
+		t.Helper()
+		deadline := time.After(30 * time.Second)
+		for drained.Load() < want {
+			select {
+			case <-caught:
+			case <-deadline:
+				t.Fatalf("%s: %d changes drained after 30 s, want %d", what, drained.Load(), want)
+			}
+		}
+	}
+	<-caught
+	notifications()
+
+	// A lease held far ahead (as an awake sidecar holds it): no
+	// notification, and the change is folded all the same.
+	exec(t, pool, `UPDATE sidetrend.wake SET awake_until = now() + interval '1 hour'`)
+	for i := 1; i <= 3; i++ {
+		exec(t, pool, `INSERT INTO kiosk VALUES ($1, 1)`, time.Now().Add(-time.Duration(i)*24*time.Hour))
+		waitDrained(int64(i), "under the lease")
+	}
+	if n := notifications(); n != 0 {
+		t.Errorf("%d notifications while the lease was held, want 0", n)
+	}
+
+	// The lease run out: a capture statement notifies and wakes the
+	// sidecar, asleep by now (it has waited for the lease to run out and
+	// for the transactions that could have seen it).
+	exec(t, pool, `UPDATE sidetrend.wake SET awake_until = '-infinity'`)
+	time.Sleep(2 * idleAfter) // let the sidecar go to sleep (not needed for correctness)
+	exec(t, pool, `INSERT INTO kiosk VALUES ($1, 1)`, time.Now().Add(-5*24*time.Hour))
+	waitDrained(4, "after the lease ran out")
+	if n := notifications(); n < 1 {
+		t.Errorf("%d notifications after the lease ran out, want at least 1", n)
+	}
+}
