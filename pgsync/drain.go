@@ -429,10 +429,15 @@ func (s *Syncer) drainLocked(ctx context.Context, mark int64) error {
 }
 
 // drainSerial drains batches until one finds the change log empty.
+//
+// A batch that claimed fewer changes than it could ends it: the log was
+// empty a moment ago, and an awake Runner reads the log's head before it
+// claims again (an empty claim is a transaction; a look at the head is one
+// index probe).
 func (s *Syncer) drainSerial(ctx context.Context) error {
 	for {
 		n, err := s.guarded(ctx, batchDrain)
-		if err != nil || n == 0 {
+		if err != nil || n < max(1, s.BatchSize) {
 			return err
 		}
 	}
@@ -633,6 +638,12 @@ type claimResult struct {
 // trip.
 func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (*claimResult, error) {
 	b := &pgx.Batch{}
+	// The drain commits asynchronously: it only moves what the log holds
+	// into points and states, in one transaction, so a commit lost in a
+	// crash takes its deletions from the log with it and the changes are
+	// drained again. Not waiting for the flush spares the source's writers
+	// a share of the WAL flushes they queue behind.
+	b.Queue(`SET LOCAL synchronous_commit = off`)
 	b.Queue(`SET LOCAL enable_seqscan = off`)
 	b.Queue(claimSQL(max(1, s.BatchSize), s.only))
 	b.Queue(`SET LOCAL enable_seqscan = on`)
@@ -640,8 +651,10 @@ func (s *Syncer) claim(ctx context.Context, tx pgx.Tx) (*claimResult, error) {
 	br := tx.SendBatch(ctx, b)
 	defer br.Close()
 	fail := func(err error) (*claimResult, error) { return nil, fmt.Errorf("claim changes: %w", err) }
-	if _, err := br.Exec(); err != nil {
-		return fail(err)
+	for range 2 {
+		if _, err := br.Exec(); err != nil {
+			return fail(err)
+		}
 	}
 	rows, err := br.Query()
 	if err != nil {
@@ -798,6 +811,10 @@ func (s *Syncer) dueBatch(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("begin due: %w", err)
 	}
 	defer tx.Rollback(context.WithoutCancel(ctx))
+	// Asynchronous commit, as the drain's (see claim).
+	if _, err := tx.Exec(ctx, `SET LOCAL synchronous_commit = off`); err != nil {
+		return 0, fmt.Errorf("begin due: %w", err)
+	}
 	var head *time.Time
 	if err := tx.QueryRow(ctx, logHeadSQL).Scan(&head); err != nil {
 		return 0, fmt.Errorf("read the change log's head: %w", err)
