@@ -487,7 +487,7 @@ func newKiosksEvery(b *testing.B, admin string, n int, origin time.Time, step ti
 	if step != 24*time.Hour {
 		bucket = fmt.Sprintf("%d seconds", int64(step/time.Second))
 	}
-	benchExec(b, pool, `SELECT sidetrend.track('kiosk_takings', 'day', 'takings', '{kiosk}', bucket => $1::interval, period => 7, harmonics => 2, horizon => 14)`, bucket)
+	benchExec(b, pool, `SELECT sidetrend.track('kiosk_takings', 'day', 'takings', '{kiosk}', bucket => $1::interval, period => 7, harmonics => 2, horizon => 14, span => '10000 years')`, bucket)
 	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
 		b.Fatal(err)
 	}
@@ -869,7 +869,7 @@ func BenchmarkLatency(b *testing.B) {
 		if _, err := pool.CopyFrom(ctx, pgx.Identifier{"meter_readings"}, cols, pgx.CopyFromRows(warm)); err != nil {
 			b.Fatal(err)
 		}
-		benchExec(b, pool, `SELECT sidetrend.track('meter_readings', 'read_at', 'kwh', '{meter}', bucket => '1 hour', period => 24, harmonics => 2, horizon => 24)`)
+		benchExec(b, pool, `SELECT sidetrend.track('meter_readings', 'read_at', 'kwh', '{meter}', bucket => '1 hour', period => 24, harmonics => 2, horizon => 24, span => '10000 years')`)
 
 		type drained struct {
 			at      time.Time

@@ -129,7 +129,7 @@ func BenchmarkCommitLatency(b *testing.B) {
 		benchExec(b, pool, `CREATE TABLE meter (meter int, at timestamptz, kwh float8)`)
 		benchExec(b, pool, `INSERT INTO meter SELECT m, '2001-01-01'::timestamptz + h * interval '1 hour', 5 + m + sin(h / 4.0)
 			FROM generate_series(0, 199) m, generate_series(0, 47) h`)
-		benchExec(b, pool, `SELECT sidetrend.track('meter', 'at', 'kwh', '{meter}', bucket => '1 hour', period => 24, harmonics => 2, horizon => 24)`)
+		benchExec(b, pool, `SELECT sidetrend.track('meter', 'at', 'kwh', '{meter}', bucket => '1 hour', period => 24, harmonics => 2, horizon => 24, span => '10000 years')`)
 		var mu sync.Mutex
 		type drained struct {
 			at    time.Time
