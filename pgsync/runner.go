@@ -237,34 +237,36 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		return err
 	}
 	r.log.Info("listening", "channel", Channel)
+	wake := true
 	for {
-		lease, err := r.renew(ctx, conn)
-		if err != nil {
-			return err
-		}
-		if err := syncer.CatchUp(ctx); err != nil {
-			return err
-		}
-		healthy()
-		if r.cfg.OnCaughtUp != nil {
-			r.cfg.OnCaughtUp(syncer.Stats())
-		}
-		lease, notified, err := r.awake(ctx, conn, syncer, lease)
-		if err != nil {
-			return err
-		}
-		if notified {
-			continue
-		}
-		woken, err := r.settle(ctx, conn, lease)
-		if err != nil {
-			return err
-		}
-		if woken {
-			continue
+		if wake {
+			lease, err := r.renew(ctx, conn)
+			if err != nil {
+				return err
+			}
+			if err := syncer.CatchUp(ctx); err != nil {
+				return err
+			}
+			healthy()
+			if r.cfg.OnCaughtUp != nil {
+				r.cfg.OnCaughtUp(syncer.Stats())
+			}
+			lease, notified, err := r.awake(ctx, conn, syncer, lease)
+			if err != nil {
+				return err
+			}
+			if notified {
+				continue
+			}
+			if woken, err := r.settle(ctx, conn, lease); err != nil || woken {
+				if err != nil {
+					return err
+				}
+				continue
+			}
 		}
 		wait, cancel := context.WithTimeout(ctx, jitter(r.cfg.Poll))
-		_, err = conn.WaitForNotification(wait)
+		_, err := conn.WaitForNotification(wait)
 		cancel()
 		if err != nil && ctx.Err() != nil {
 			return ctx.Err()
@@ -272,9 +274,24 @@ func (r *Runner) session(ctx context.Context, pool *pgxpool.Pool, syncer *Syncer
 		if err != nil && !errors.Is(err, context.DeadlineExceeded) {
 			return err
 		}
-		if err := drainNotifications(ctx, conn); err != nil {
+		if err == nil {
+			if err := drainNotifications(ctx, conn); err != nil {
+				return err
+			}
+			wake = true
+			continue
+		}
+		// The poll timer: a look without taking the lease (writers keep
+		// notifying); only if it finds changes does the sidecar wake.
+		before := syncer.Stats().Changes
+		if err := syncer.CatchUp(ctx); err != nil {
 			return err
 		}
+		healthy()
+		if r.cfg.OnCaughtUp != nil {
+			r.cfg.OnCaughtUp(syncer.Stats())
+		}
+		wake = syncer.Stats().Changes > before
 	}
 }
 

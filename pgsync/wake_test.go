@@ -84,7 +84,20 @@ func TestWakeWithoutNotify(t *testing.T) {
 	// sidecar, asleep by now (it has waited for the lease to run out and
 	// for the transactions that could have seen it).
 	exec(t, pool, `UPDATE sidetrend.wake SET awake_until = '-infinity'`)
-	time.Sleep(2 * idleAfter) // let the sidecar go to sleep (not needed for correctness)
+	// Wait until the sidecar let the lease run out (it may have renewed it
+	// once more), and for it to settle.
+	for {
+		var held bool
+		if err := pool.QueryRow(ctx, `SELECT awake_until > clock_timestamp() FROM sidetrend.wake`).Scan(&held); err != nil {
+			t.Fatal(err)
+		}
+		if !held {
+			break
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	time.Sleep(4 * idleAfter)
+	notifications()
 	exec(t, pool, `INSERT INTO kiosk VALUES ($1, 1)`, time.Now().Add(-5*24*time.Hour))
 	waitDrained(4, "after the lease ran out")
 	if n := notifications(); n < 1 {
