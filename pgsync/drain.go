@@ -103,7 +103,7 @@ WITH claimed AS (
         dirty = p.dirty OR EXCLUDED.dirty
     RETURNING p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v, p.dirty
 ), locked AS (
-    SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild,
+    SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild OR s.failed AS rebuild,
            s.lambda, s.last_direction, s.pending_due
     -- The keys are sorted, not the rows (which carry the states): a nested
     -- loop locks in the order of its outer side. (A deadlock, should a plan
@@ -138,9 +138,10 @@ SELECT * FROM unnest($1::int[], $2::text[]) ORDER BY 1, 2
 ON CONFLICT (tracker_id, series_key) DO NOTHING`
 
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
-// that two sidecars never wait on each other in a cycle.
+// that two sidecars never wait on each other in a cycle. A series whose last
+// fold failed (failed, see failSeriesSQL) is replayed from all its points.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
+SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild OR s.failed, s.lambda, s.last_direction, s.pending_due
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -253,6 +254,7 @@ type Stats struct {
 	Rebuilds  int64 // series replayed from their points
 	Backfills int64 // trackers backfilled from their source table
 	Retries   int64 // batches retried after a deadlock or serialization failure
+	Failed    int64 // series set aside because their fold failed (failSeriesSQL)
 	// FromClaim counts series handled with the points their claim returned
 	// (see claimedSuffice), Loaded those whose points were read from
 	// sidetrend.points.
@@ -267,6 +269,7 @@ func (st *Stats) add(o Stats) {
 	st.Rebuilds += o.Rebuilds
 	st.Backfills += o.Backfills
 	st.Retries += o.Retries
+	st.Failed += o.Failed
 	st.FromClaim += o.FromClaim
 	st.Loaded += o.Loaded
 }
@@ -849,6 +852,7 @@ type seriesWork struct {
 	blob       []byte // the stored state, decoded into state when needed
 
 	oldPendingDue *time.Time // pending_due as stored
+	note          *string    // why the series was replayed, kept as its last_error
 	// unchanged: nothing was folded and the row as stored is still right
 	// (rows that only add to a bucket still open), so it is not rewritten.
 	unchanged bool
@@ -967,6 +971,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	out := newSeriesRows(len(ids), maxH)
 	var goneTids []int32 // series with no point left
 	var goneKeys []string
+	var failTids []int32 // series whose fold failed
+	var failKeys, failMsgs []string
 	var surprises []Surprise
 	for _, id := range ids {
 		w := work[id]
@@ -978,7 +984,17 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		keep, err := s.fold(w, now, out)
 		if err != nil {
-			return &foldError{id: id, err: err}
+			var te *trackerError
+			if errors.As(err, &te) {
+				return &foldError{id: id, err: err}
+			}
+			// The error is this series' own: its row keeps its last good
+			// state and forecasts, marked failed with the error, and the
+			// batch goes on with the others.
+			s.log.Error("series set aside: it fails to fold; the others go on", "tracker", w.tracker.Name, "series_key", id.key, "err", err)
+			s.stats.Failed++
+			failTids, failKeys, failMsgs = append(failTids, int32(id.tracker)), append(failKeys, id.key), append(failMsgs, err.Error())
+			continue
 		}
 		if !keep {
 			goneTids, goneKeys = append(goneTids, int32(id.tracker)), append(goneKeys, id.key)
@@ -1010,6 +1026,11 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		b.Queue(`SET LOCAL enable_seqscan = on`)
 		if err := tx.SendBatch(ctx, b).Close(); err != nil {
 			return fmt.Errorf("write series: %w", err)
+		}
+	}
+	if len(failTids) > 0 {
+		if _, err := tx.Exec(ctx, failSeriesSQL, failTids, failKeys, failMsgs); err != nil {
+			return fmt.Errorf("mark failed series: %w", err)
 		}
 	}
 	if len(goneTids) > 0 {
@@ -1105,6 +1126,8 @@ func (w *seriesWork) decode(log *slog.Logger) {
 	st, err := estimator.DecodeFor(w.blob, w.spec)
 	if err != nil {
 		log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", w.id.key, "reason", err.Error())
+		msg := fmt.Sprintf("the stored state did not decode (%v); replayed from the points", err)
+		w.note = &msg
 		w.rebuild = true
 		return
 	}
@@ -1210,12 +1233,24 @@ func deref(x *float64) (float64, bool) {
 
 // fold advances w's state over its due points and adds its new row to out;
 // it reports false (and adds nothing) when the series has no point left.
-func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
+//
+// An error that every series of the tracker would meet (its model does not
+// make a state) is a *trackerError; any other error, a panic of the
+// estimator's included, belongs to this series alone.
+func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (keep bool, err error) {
 	t := w.tracker
+	defer func() {
+		if r := recover(); r != nil {
+			keep, err = false, fmt.Errorf("the estimator failed on this series: %v", r)
+		}
+	}()
 	if w.rebuild || w.state == nil {
 		st, err := estimator.NewState(w.spec)
+		if err != nil && w.lambda == nil {
+			return false, &trackerError{fmt.Errorf("tracker %q: %w", t.Name, err)}
+		}
 		if err != nil {
-			return false, fmt.Errorf("tracker %q: %w", t.Name, err)
+			return false, fmt.Errorf("the series' own lambda %v: %w; SELECT sidetrend.tune(%q, per_series => true, apply => true) or rebuild it", *w.lambda, err, t.Name)
 		}
 		// A replay starts from all points: they were loaded from the first
 		// bucket on, because after was MinInt64 for this series.
@@ -1229,7 +1264,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 	var lastErr *string
 	vals, pendingDue, err := t.dueValues(w.points, now)
 	if err != nil {
-		return false, err
+		return false, &trackerError{err}
 	}
 	if w.unchangedBy(vals, pendingDue) {
 		w.unchanged = true
@@ -1238,6 +1273,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 	if !w.hasFold && len(vals) > 0 {
 		w.first = vals[0].bucket
 	}
+	lastErr = w.note
 	for _, p := range vals {
 		y, _ := t.value(p)
 		if w.hasFold {

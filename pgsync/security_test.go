@@ -328,8 +328,8 @@ func TestWriterCannotStopTheLog(t *testing.T) {
 		at time.Time
 		k  string
 	}{
-		{now, strings.Repeat("x", 3200)},  // index entries hold about 2700 bytes
-		{time.Date(1, 1, 1, 0, 0, 0, 0, time.UTC), "old"},  // 17.76M empty hourly buckets
+		{now, strings.Repeat("x", 3200)},                     // index entries hold about 2700 bytes
+		{time.Date(1, 1, 1, 0, 0, 0, 0, time.UTC), "old"},    // 17.76M empty hourly buckets
 		{time.Date(1900, 1, 1, 0, 0, 0, 0, time.UTC), "old"}, // beyond 100,000 hours
 		{now.Add(-time.Hour), "ok"},
 	} {
