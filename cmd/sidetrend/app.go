@@ -22,7 +22,7 @@ func versionString() string {
 }
 
 func newApp() *cli.App {
-	return &cli.App{
+	app := &cli.App{
 		Name:    "sidetrend",
 		Usage:   "keep short-term forecasts and trend slopes for Postgres time series current, served to plain SQL",
 		Version: versionString(),
@@ -53,4 +53,6 @@ func newApp() *cli.App {
 			},
 		},
 	}
+	withServerDetail(app.Commands)
+	return app
 }
