@@ -875,6 +875,9 @@ type point struct {
 // state is replayed from all points. now is the clock that closes buckets
 // (Syncer.clock).
 func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID]int64, c *claimResult, now time.Time) error {
+	if err := s.checkSettings(ctx, tx, minTouched); err != nil {
+		return err
+	}
 	ids := make([]seriesID, 0, len(minTouched))
 	for id := range minTouched {
 		if _, ok := s.trackers[id.tracker]; !ok {
@@ -1039,6 +1042,51 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 	}
 	return RecordSurprises(ctx, tx, surprises)
+}
+
+// settingsSQL reads the settings versions of the trackers a batch folds and
+// holds their rows FOR SHARE until it commits: sidetrend.alter_tracker,
+// which updates the row, waits for batches that fold with the old settings,
+// and a batch that starts after it committed sees the new version.
+const settingsSQL = `SELECT id, settings_version FROM sidetrend.trackers WHERE id = ANY ($1) ORDER BY id FOR SHARE`
+
+// checkSettings reloads the cached trackers when one of those touched was
+// changed since they were read (or is not cached yet).
+func (s *Syncer) checkSettings(ctx context.Context, tx pgx.Tx, touched map[seriesID]int64) error {
+	seen := map[int]bool{}
+	var tids []int32
+	for id := range touched {
+		if !seen[id.tracker] {
+			seen[id.tracker] = true
+			tids = append(tids, int32(id.tracker))
+		}
+	}
+	if len(tids) == 0 {
+		return nil
+	}
+	rows, err := tx.Query(ctx, settingsSQL, tids)
+	if err != nil {
+		return fmt.Errorf("read tracker settings: %w", err)
+	}
+	stale := false
+	for rows.Next() {
+		var id int32
+		var version int
+		if err := rows.Scan(&id, &version); err != nil {
+			rows.Close()
+			return fmt.Errorf("read tracker settings: %w", err)
+		}
+		if t := s.trackers[int(id)]; t == nil || t.Version != version {
+			stale = true
+		}
+	}
+	if err := rows.Err(); err != nil {
+		return fmt.Errorf("read tracker settings: %w", err)
+	}
+	if stale {
+		return s.refreshTrackers(ctx)
+	}
+	return nil
 }
 
 // seriesColumns splits ids into the parallel arrays the statements take.

@@ -36,6 +36,7 @@ func newApp() *cli.App {
 			migrateCommand(),
 			trackCommand(),
 			untrackCommand(),
+			alterCommand(),
 			runCommand(),
 			rebuildCommand(),
 			tuneCommand(),
