@@ -7,8 +7,10 @@ GOFILES    = $(shell git ls-files '*.go' 2>/dev/null; git ls-files --others --ex
 
 all: build
 
+# The commit goes in with -X as well: Go stamps it itself only when .git is
+# a directory (not in a git worktree).
 build:
-	$(GO) build -o $(BIN) ./cmd/sidetrend
+	$(GO) build -ldflags "-X main.commit=$$(git rev-parse HEAD 2>/dev/null)" -o $(BIN) ./cmd/sidetrend
 
 postgres:
 	@bash scripts/ensure-postgres.sh

@@ -167,12 +167,39 @@ func Track(ctx context.Context, pool *pgxpool.Pool, o TrackOptions) (int, error)
 	return id, nil
 }
 
-// Untrack calls sidetrend.untrack(name).
-func Untrack(ctx context.Context, pool *pgxpool.Pool, name string) error {
-	if _, err := pool.Exec(ctx, `SELECT sidetrend.untrack($1)`, name); err != nil {
-		return fmt.Errorf("untrack %s: %w", name, err)
+// Removed is what an untrack removed.
+type Removed struct {
+	Source                                      string
+	Series, Points, Changes, Rejects, Forecasts int64
+}
+
+// untrackCountsSQL counts what sidetrend.untrack is about to remove.
+const untrackCountsSQL = `
+SELECT t.source_name,
+       (SELECT count(*) FROM sidetrend.series s WHERE s.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.points p WHERE p.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.changes c WHERE c.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.rejects r WHERE r.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.forecast_issues i WHERE i.tracker_id = t.id)
+FROM sidetrend.trackers t WHERE t.name = $1`
+
+// Untrack calls sidetrend.untrack(name) and says what it removed (counted
+// in the same transaction).
+func Untrack(ctx context.Context, pool *pgxpool.Pool, name string) (Removed, error) {
+	var r Removed
+	err := pgx.BeginFunc(ctx, pool, func(tx pgx.Tx) error {
+		// A name that is not a tracker leaves the counts at zero; untrack
+		// then says so.
+		if err := tx.QueryRow(ctx, untrackCountsSQL, name).Scan(&r.Source, &r.Series, &r.Points, &r.Changes, &r.Rejects, &r.Forecasts); err != nil && err != pgx.ErrNoRows {
+			return err
+		}
+		_, err := tx.Exec(ctx, `SELECT sidetrend.untrack($1)`, name)
+		return err
+	})
+	if err != nil {
+		return Removed{}, fmt.Errorf("untrack %s: %w", name, err)
 	}
-	return nil
+	return r, nil
 }
 
 // AlterOptions are the arguments of sidetrend.alter_tracker(); nil pointers

@@ -398,7 +398,7 @@ func demoSetup(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.R
 		return fmt.Errorf("look for an earlier demo: %w", err)
 	}
 	if old {
-		if err := pgsync.Untrack(ctx, pool, demoTracker); err != nil {
+		if _, err := pgsync.Untrack(ctx, pool, demoTracker); err != nil {
 			return err
 		}
 	}

@@ -49,3 +49,44 @@ func withServerDetail(cmds []*cli.Command) {
 		}
 	}
 }
+
+// withEnvVars gives every flag that names no environment variable of its
+// own one: SIDETREND_, the command's name and the flag's name, in capitals
+// with - as _ (sidetrend track --table: SIDETREND_TRACK_TABLE). A flag
+// given on the command line wins over its variable.
+func withEnvVars(cmds []*cli.Command, prefix string) {
+	for _, c := range cmds {
+		p := prefix + "_" + envName(c.Name)
+		withEnvVars(c.Subcommands, p)
+		for _, f := range c.Flags {
+			name := p + "_" + envName(f.Names()[0])
+			switch f := f.(type) {
+			case *cli.StringFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.IntFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.Int64Flag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.Float64Flag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.BoolFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.DurationFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.StringSliceFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			case *cli.TimestampFlag:
+				f.EnvVars = orEnv(f.EnvVars, name)
+			}
+		}
+	}
+}
+
+func orEnv(have []string, name string) []string {
+	if len(have) > 0 {
+		return have
+	}
+	return []string{name}
+}
+
+func envName(s string) string { return strings.ToUpper(strings.ReplaceAll(s, "-", "_")) }

@@ -23,9 +23,9 @@ func statusCommand() *cli.Command {
 			"bucket and error, of every tracker or of --tracker.",
 		Flags: []cli.Flag{
 			dbFlag,
-			&cli.StringFlag{Name: "format", Value: "table", Usage: "table (aligned text) or json", EnvVars: []string{"SIDETREND_FORMAT"}},
+			&cli.StringFlag{Name: "format", Value: "table", Usage: "table (aligned text) or json", EnvVars: []string{"SIDETREND_STATUS_FORMAT"}},
 			&cli.BoolFlag{Name: "series", Usage: "list the series (key, state, points, newest folded bucket, error)", EnvVars: []string{"SIDETREND_STATUS_SERIES"}},
-			&cli.StringFlag{Name: "tracker", Usage: "only the series of this tracker (with --series)", EnvVars: []string{"SIDETREND_TRACKER"}},
+			&cli.StringFlag{Name: "tracker", Usage: "only the series of this tracker (with --series)", EnvVars: []string{"SIDETREND_STATUS_TRACKER"}},
 			&cli.IntFlag{Name: "limit", Value: 100, Usage: "list at most this many series", EnvVars: []string{"SIDETREND_STATUS_LIMIT"}},
 		},
 		Action: func(c *cli.Context) error {
