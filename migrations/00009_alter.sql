@@ -256,6 +256,10 @@ RETURN sidetrend._alter_tracker_as(current_user, name, horizon, degree, period, 
 -- +goose StatementEnd
 COMMENT ON FUNCTION sidetrend.alter_tracker(text, int, int, float8, int, float8, boolean, int, int, interval, text, interval)
     IS 'Change a tracker''s settings in place, keeping its points: horizon, degree, period (0: none), harmonics, lambda (or lambda_auto), burn_in, history_buckets, span, tz, bucket. Arguments left NULL keep their setting. Returns what changed.';
+COMMENT ON FUNCTION sidetrend._alter_tracker_as(name, text, int, int, float8, int, float8, boolean, int, int, interval, text, interval)
+    IS 'Internal: alter_tracker for the given caller, owner-checked (call sidetrend.alter_tracker).';
+COMMENT ON FUNCTION sidetrend.check_settings(interval, text, int, float8, int, float8, int, int, int, interval)
+    IS 'Internal: raises, with what to use instead, when tracker settings are not usable.';
 
 CREATE OR REPLACE VIEW sidetrend.forecasts AS
 SELECT t.name AS tracker,
