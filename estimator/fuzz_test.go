@@ -6,6 +6,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
+	"time"
 )
 
 // Run the fuzzers with, for example,
@@ -28,6 +29,12 @@ func FuzzUnmarshalState(f *testing.F) {
 	f.Add([]byte("stS"))
 	f.Add([]byte("stS\x01\x00\x00\x00\x00\x00\x00"))
 	f.Fuzz(func(t *testing.T, data []byte) {
+		began := time.Now()
+		defer func() {
+			if took := time.Since(began); took > fuzzDeadline {
+				t.Fatalf("one input took %v, more than %v", took, fuzzDeadline)
+			}
+		}()
 		for _, b := range [][]byte{data, withCRC(data)} {
 			st, err := UnmarshalState(b)
 			if err != nil {
@@ -67,7 +74,8 @@ var updateSpecs = []Spec{
 // fuzzOps encodes a script for FuzzUpdate: a spec byte, then 9 bytes per
 // operation: a kind byte and 8 bytes of float64 bits. Kinds 0-5 observe the
 // float, 6 skips float-bits mod 16 buckets, 7 skips (int64 of the bits),
-// which may be negative or huge.
+// which may be negative or huge. The spec byte picks the model (mod 8); with
+// bit 3 (warmUp) set the script starts after 30 values 100 + i%5.
 func fuzzOps(spec byte, ops ...any) []byte {
 	b := []byte{spec}
 	for _, op := range ops {
@@ -83,24 +91,48 @@ func fuzzOps(spec byte, ops ...any) []byte {
 	return b
 }
 
+// warmUp is the bit of the spec byte that starts a script with 30 values.
+const warmUp = 8
+
+// maxFuzzOps bounds the operations of one FuzzUpdate input; the rest of a
+// longer input is ignored. The fuzzer minimizes every input that finds new
+// code by trying to remove each byte and each run of bytes (tries that grow
+// with the square of its length), up to -fuzzminimizetime (60 s by default)
+// per input: with the warm-up spelled out in the seeds, inputs of 600 to
+// 2,142 bytes (up to 238 operations, each checked by encoding, decoding and
+// forecasting) kept a worker minimizing for the whole minute again and
+// again, which is the stall of issue 17 ("22 inputs in 150 s"). No single
+// input took longer than 50 ms: no state of the estimator's is slow. At 32
+// operations minimizing still paused a worker for up to 25 s; at 16 an
+// input costs about 50 us and a minimization a few seconds.
+const maxFuzzOps = 16
+
+// fuzzDeadline is the longest one input may take: a slower one fails, so
+// that the fuzzer saves it.
+const fuzzDeadline = time.Second
+
 // FuzzUpdate: arbitrary values (NaN, Inf, 1e300, -0, subnormals) and gap
 // lengths never panic; a failed update is an error that leaves the state
 // exactly as it was (same encoding); and a Ready state's forecasts hold no
 // NaN or Inf, except the interval values (SE, bounds, sigma, quantiles)
 // while T - p <= 0 gives no degrees of freedom, and the bounds and quantiles
-// while T - p is too small for a finite t quantile.
+// while T - p is too small for a finite t quantile. No input takes more than
+// fuzzDeadline.
 func FuzzUpdate(f *testing.F) {
 	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 1e300, -1e300, math.Copysign(0, -1),
 		5e-324, -2.2250738585072014e-308, math.MaxFloat64, 1e154, 1.4e154, -1e-300, 1}
 	for s := range updateSpecs {
-		var ops []any
-		for i := 0; i < 30; i++ {
-			ops = append(ops, 100+float64(i%5))
+		// Each special value after a warm-up, followed by a normal value
+		// and a gap: three scripts of up to 15 operations per model.
+		for part := 0; part < 3; part++ {
+			var ops []any
+			for i, x := range specials {
+				if i%3 == part {
+					ops = append(ops, x, 100.0, i*1000-3000)
+				}
+			}
+			f.Add(fuzzOps(byte(s)|warmUp, ops...))
 		}
-		for i, x := range specials {
-			ops = append(ops, x, 100.0, i*1000-3000)
-		}
-		f.Add(fuzzOps(byte(s), ops...))
 	}
 	f.Add(fuzzOps(1, 1.0, 2.0, 3.0, 1<<62, 4.0, 5.0))
 	f.Add(fuzzOps(2, 1e150, -1e150, 1e150, -1e150, 1e150, 3, 1e150))
@@ -118,40 +150,58 @@ func FuzzUpdate(f *testing.F) {
 	// diagonal entry of -1e-241, and the state no longer decoded.
 	f.Add([]byte("%00000000072B\x00\x00\x00\x00\x00\x00000000000"))
 	f.Add([]byte("%00000000079B\x00\x00\x00\x00\x00\x00000000000"))
-	f.Fuzz(func(t *testing.T, data []byte) {
-		if len(data) == 0 {
-			return
-		}
-		st, err := NewState(updateSpecs[int(data[0])%len(updateSpecs)])
-		if err != nil {
-			t.Fatal(err)
-		}
-		data = data[1:]
-		for len(data) >= 9 {
-			kind, bits := data[0], binary.LittleEndian.Uint64(data[1:9])
-			data = data[9:]
-			before := mustMarshal(t, st)
-			var err error
-			switch {
-			case kind%8 < 6:
-				_, err = st.Observe(math.Float64frombits(bits))
-			case kind%8 == 6:
-				err = st.Skip(int(bits % 16))
-			default:
-				err = st.Skip(int(int64(bits)))
+	// Found by the fuzzer (cut to 11 operations): sigma = sqrt(S / (T - p))
+	// overflowed to +Inf for S = 9.3e306 and T - p = 0.0085.
+	f.Add([]byte("%\x02\xf17pEzF\x9a\xb1\x11\a\t\xa8\x02[P\x9aZ\xea\xa5LHu\xd7ñ\xd8L\x89\xae\xd4JP)\x10/\x16\xf8\x80\"\x88\v\xffb4\x99\x9d\x97ܥ\x1bO&\xc4\f\xb96\xa6\x15]\xfde\x9b\x9a\xdd\tT\x1d1\xd4J\xd5^\xf9\r\x02݂x,\x87\x1c\xdd\xcd\xe0\xd0u\xaa\x85Sq\xef\xa2RI\xf1\xbc\xde\xdf"))
+	// testdata/fuzz/FuzzUpdate/aa6fb0477bc0aab4 is the 2,142-byte input a
+	// worker spent the whole minute minimizing (see maxFuzzOps).
+	f.Fuzz(fuzzUpdate)
+}
+
+func fuzzUpdate(t *testing.T, data []byte) {
+	if len(data) == 0 {
+		return
+	}
+	began := time.Now()
+	st, err := NewState(updateSpecs[int(data[0])%len(updateSpecs)])
+	if err != nil {
+		t.Fatal(err)
+	}
+	if data[0]&warmUp != 0 {
+		for i := 0; i < 30; i++ {
+			if _, err := st.Observe(100 + float64(i%5)); err != nil {
+				t.Fatal(err)
 			}
-			after := mustMarshal(t, st)
-			if err != nil && !bytes.Equal(before, after) {
-				t.Fatalf("failed update (%v) changed the state", err)
-			}
-			if dec, err := UnmarshalState(after); err != nil {
-				t.Fatalf("state after an update does not decode: %v", err)
-			} else if !bytes.Equal(mustMarshal(t, dec), after) {
-				t.Fatal("state after an update does not round-trip")
-			}
-			checkFinite(t, st)
 		}
-	})
+	}
+	data = data[1:]
+	for op := 0; len(data) >= 9 && op < maxFuzzOps; op++ {
+		kind, bits := data[0], binary.LittleEndian.Uint64(data[1:9])
+		data = data[9:]
+		before := mustMarshal(t, st)
+		var err error
+		switch {
+		case kind%8 < 6:
+			_, err = st.Observe(math.Float64frombits(bits))
+		case kind%8 == 6:
+			err = st.Skip(int(bits % 16))
+		default:
+			err = st.Skip(int(int64(bits)))
+		}
+		after := mustMarshal(t, st)
+		if err != nil && !bytes.Equal(before, after) {
+			t.Fatalf("failed update (%v) changed the state", err)
+		}
+		if dec, err := UnmarshalState(after); err != nil {
+			t.Fatalf("state after an update does not decode: %v", err)
+		} else if !bytes.Equal(mustMarshal(t, dec), after) {
+			t.Fatal("state after an update does not round-trip")
+		}
+		checkFinite(t, st)
+	}
+	if took := time.Since(began); took > fuzzDeadline {
+		t.Fatalf("one input took %v, more than %v", took, fuzzDeadline)
+	}
 }
 
 // checkFinite fails when a Ready state answers with NaN or Inf where a
@@ -165,8 +215,9 @@ func checkFinite(t *testing.T, st *State) {
 	if err != nil {
 		t.Fatalf("Ready state: Forecast: %v", err)
 	}
+	// bad runs for every value checked: no t.Helper here (it walks the
+	// stack, and was 40 % of the fuzzer's time).
 	bad := func(what string, xs ...float64) {
-		t.Helper()
 		for i, x := range xs {
 			if !finite(x) {
 				t.Fatalf("Ready state (T=%v, p=%d, S=%v, rcond=%v): %s[%d] = %v", st.Weight(), st.Params(), st.RSS(), st.RCond(), what, i, x)

@@ -360,13 +360,15 @@ func (st *State) Ready() bool {
 func (st *State) DF() float64 { return st.t - float64(st.p) }
 
 // Sigma is the residual standard deviation sqrt(S / (T - p)), NaN while
-// T <= p.
+// T <= p. It is computed as sqrt(S) / sqrt(T - p): S near the largest
+// float64 divided by a small T - p overflowed to +Inf where the square
+// roots stay finite (found by the fuzzer: S = 9.3e306, T - p = 0.0085).
 func (st *State) Sigma() float64 {
 	df := st.DF()
 	if df <= 0 {
 		return math.NaN()
 	}
-	return math.Sqrt(st.s / df)
+	return math.Sqrt(st.s) / math.Sqrt(df)
 }
 
 // Step tells what one observation did: whether it was scored against the

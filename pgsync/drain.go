@@ -103,7 +103,7 @@ WITH claimed AS (
         dirty = p.dirty OR EXCLUDED.dirty
     RETURNING p.tracker_id, p.series_key, p.bucket, p.n, p.sum, p.min, p.max, p.last_v, p.dirty
 ), locked AS (
-    SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild,
+    SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild OR s.failed AS rebuild,
            s.lambda, s.last_direction, s.pending_due
     -- The keys are sorted, not the rows (which carry the states): a nested
     -- loop locks in the order of its outer side. (A deadlock, should a plan
@@ -138,9 +138,10 @@ SELECT * FROM unnest($1::int[], $2::text[]) ORDER BY 1, 2
 ON CONFLICT (tracker_id, series_key) DO NOTHING`
 
 // lockSeriesSQL locks the series rows a batch will rewrite, in key order so
-// that two sidecars never wait on each other in a cycle.
+// that two sidecars never wait on each other in a cycle. A series whose last
+// fold failed (failed, see failSeriesSQL) is replayed from all its points.
 const lockSeriesSQL = `
-SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild, s.lambda, s.last_direction, s.pending_due
+SELECT s.tracker_id, s.series_key, s.folded_through, s.first_bucket, s.state, s.rebuild OR s.failed, s.lambda, s.last_direction, s.pending_due
 FROM sidetrend.series s
 JOIN unnest($1::int[], $2::text[]) AS q(tid, key) ON s.tracker_id = q.tid AND s.series_key = q.key
 ORDER BY s.tracker_id, s.series_key
@@ -253,6 +254,7 @@ type Stats struct {
 	Rebuilds  int64 // series replayed from their points
 	Backfills int64 // trackers backfilled from their source table
 	Retries   int64 // batches retried after a deadlock or serialization failure
+	Failed    int64 // series set aside because their fold failed (failSeriesSQL)
 	// FromClaim counts series handled with the points their claim returned
 	// (see claimedSuffice), Loaded those whose points were read from
 	// sidetrend.points.
@@ -267,6 +269,7 @@ func (st *Stats) add(o Stats) {
 	st.Rebuilds += o.Rebuilds
 	st.Backfills += o.Backfills
 	st.Retries += o.Retries
+	st.Failed += o.Failed
 	st.FromClaim += o.FromClaim
 	st.Loaded += o.Loaded
 }
@@ -887,6 +890,7 @@ type seriesWork struct {
 	blob       []byte // the stored state, decoded into state when needed
 
 	oldPendingDue *time.Time // pending_due as stored
+	note          *string    // why the series was replayed, kept as its last_error
 	// unchanged: nothing was folded and the row as stored is still right
 	// (rows that only add to a bucket still open), so it is not rewritten.
 	unchanged bool
@@ -909,6 +913,9 @@ type point struct {
 // state is replayed from all points. now is the clock that closes buckets
 // (Syncer.clock).
 func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID]int64, c *claimResult, now time.Time) error {
+	if err := s.checkSettings(ctx, tx, minTouched); err != nil {
+		return err
+	}
 	ids := make([]seriesID, 0, len(minTouched))
 	for id := range minTouched {
 		if _, ok := s.trackers[id.tracker]; !ok {
@@ -1005,6 +1012,8 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 	out := newSeriesRows(len(ids), maxH)
 	var goneTids []int32 // series with no point left
 	var goneKeys []string
+	var failTids []int32 // series whose fold failed
+	var failKeys, failMsgs []string
 	var surprises []Surprise
 	for _, id := range ids {
 		w := work[id]
@@ -1016,7 +1025,17 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 		}
 		keep, err := s.fold(w, now, out)
 		if err != nil {
-			return &foldError{id: id, err: err}
+			var te *trackerError
+			if errors.As(err, &te) {
+				return &foldError{id: id, err: err}
+			}
+			// The error is this series' own: its row keeps its last good
+			// state and forecasts, marked failed with the error, and the
+			// batch goes on with the others.
+			s.log.Error("series set aside: it fails to fold; the others go on", "tracker", w.tracker.Name, "series_key", id.key, "err", err)
+			s.stats.Failed++
+			failTids, failKeys, failMsgs = append(failTids, int32(id.tracker)), append(failKeys, id.key), append(failMsgs, err.Error())
+			continue
 		}
 		if !keep {
 			goneTids, goneKeys = append(goneTids, int32(id.tracker)), append(goneKeys, id.key)
@@ -1050,12 +1069,62 @@ func (s *Syncer) advance(ctx context.Context, tx pgx.Tx, minTouched map[seriesID
 			return fmt.Errorf("write series: %w", err)
 		}
 	}
+	if len(failTids) > 0 {
+		if _, err := tx.Exec(ctx, failSeriesSQL, failTids, failKeys, failMsgs); err != nil {
+			return fmt.Errorf("mark failed series: %w", err)
+		}
+	}
 	if len(goneTids) > 0 {
 		if _, err := tx.Exec(ctx, deleteSeriesSQL, goneTids, goneKeys); err != nil {
 			return fmt.Errorf("delete empty series: %w", err)
 		}
 	}
 	return RecordSurprises(ctx, tx, surprises)
+}
+
+// settingsSQL reads the settings versions of the trackers a batch folds and
+// holds their rows FOR SHARE until it commits: sidetrend.alter_tracker,
+// which updates the row, waits for batches that fold with the old settings,
+// and a batch that starts after it committed sees the new version.
+const settingsSQL = `SELECT id, settings_version FROM sidetrend.trackers WHERE id = ANY ($1) ORDER BY id FOR SHARE`
+
+// checkSettings reloads the cached trackers when one of those touched was
+// changed since they were read (or is not cached yet).
+func (s *Syncer) checkSettings(ctx context.Context, tx pgx.Tx, touched map[seriesID]int64) error {
+	seen := map[int]bool{}
+	var tids []int32
+	for id := range touched {
+		if !seen[id.tracker] {
+			seen[id.tracker] = true
+			tids = append(tids, int32(id.tracker))
+		}
+	}
+	if len(tids) == 0 {
+		return nil
+	}
+	rows, err := tx.Query(ctx, settingsSQL, tids)
+	if err != nil {
+		return fmt.Errorf("read tracker settings: %w", err)
+	}
+	stale := false
+	for rows.Next() {
+		var id int32
+		var version int
+		if err := rows.Scan(&id, &version); err != nil {
+			rows.Close()
+			return fmt.Errorf("read tracker settings: %w", err)
+		}
+		if t := s.trackers[int(id)]; t == nil || t.Version != version {
+			stale = true
+		}
+	}
+	if err := rows.Err(); err != nil {
+		return fmt.Errorf("read tracker settings: %w", err)
+	}
+	if stale {
+		return s.refreshTrackers(ctx)
+	}
+	return nil
 }
 
 // seriesColumns splits ids into the parallel arrays the statements take.
@@ -1143,6 +1212,8 @@ func (w *seriesWork) decode(log *slog.Logger) {
 	st, err := estimator.DecodeFor(w.blob, w.spec)
 	if err != nil {
 		log.Warn("series state replaced by a replay", "tracker", w.tracker.Name, "series_key", w.id.key, "reason", err.Error())
+		msg := fmt.Sprintf("the stored state did not decode (%v); replayed from the points", err)
+		w.note = &msg
 		w.rebuild = true
 		return
 	}
@@ -1248,12 +1319,24 @@ func deref(x *float64) (float64, bool) {
 
 // fold advances w's state over its due points and adds its new row to out;
 // it reports false (and adds nothing) when the series has no point left.
-func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (bool, error) {
+//
+// An error that every series of the tracker would meet (its model does not
+// make a state) is a *trackerError; any other error, a panic of the
+// estimator's included, belongs to this series alone.
+func (s *Syncer) fold(w *seriesWork, now time.Time, out *seriesRows) (keep bool, err error) {
 	t := w.tracker
+	defer func() {
+		if r := recover(); r != nil {
+			keep, err = false, fmt.Errorf("the estimator failed on this series: %v", r)
+		}
+	}()
 	if w.rebuild || w.state == nil {
 		st, err := estimator.NewState(w.spec)
+		if err != nil && w.lambda == nil {
+			return false, &trackerError{fmt.Errorf("tracker %q: %w", t.Name, err)}
+		}
 		if err != nil {
-			return false, fmt.Errorf("tracker %q: %w", t.Name, err)
+			return false, fmt.Errorf("the series' own lambda %v: %w; SELECT sidetrend.tune(%q, per_series => true, apply => true) or rebuild it", *w.lambda, err, t.Name)
 		}
 		// A replay starts from all points: they were loaded from the first
 		// bucket on, because after was MinInt64 for this series.
@@ -1267,7 +1350,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 	var lastErr *string
 	vals, pendingDue, err := t.dueValues(w.points, now)
 	if err != nil {
-		return false, err
+		return false, &trackerError{err}
 	}
 	if w.unchangedBy(vals, pendingDue) {
 		w.unchanged = true
@@ -1276,6 +1359,7 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 	if !w.hasFold && len(vals) > 0 {
 		w.first = vals[0].bucket
 	}
+	lastErr = w.note
 	for _, p := range vals {
 		y, _ := t.value(p)
 		if w.hasFold {

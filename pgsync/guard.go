@@ -138,6 +138,25 @@ type foldError struct {
 func (e *foldError) Error() string { return fmt.Sprintf("series %q: %v", e.id.key, e.err) }
 func (e *foldError) Unwrap() error { return e.err }
 
+// trackerError is an error while folding that every series of one tracker
+// would meet (its model makes no state, its calendar has no end for a
+// bucket): the tracker is set aside, not the series.
+type trackerError struct{ err error }
+
+func (e *trackerError) Error() string { return e.err.Error() }
+func (e *trackerError) Unwrap() error { return e.err }
+
+// failSeriesSQL marks series whose fold failed: the row keeps its last good
+// state and forecasts, last_error and error_at say what failed and when,
+// and failed makes the next change (or sidetrend.rebuild) replay it from
+// all its points. It no longer waits for a bucket (pending_due) nor for a
+// replay (rebuild), so that the clock does not retry it in every batch.
+const failSeriesSQL = `
+UPDATE sidetrend.series s SET failed = true, rebuild = false, pending_due = NULL,
+    last_error = q.msg, error_at = now(), updated_at = now()
+FROM unnest($1::int[], $2::text[], $3::text[]) AS q(tid, key, msg)
+WHERE s.tracker_id = q.tid AND s.series_key = q.key`
+
 // checkTrackersSQL pauses trackers whose source no longer passes the checks
 // of sidetrend.source_problem (and marks those whose table was dropped
 // broken), and resumes paused ones that pass again.

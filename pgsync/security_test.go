@@ -497,13 +497,23 @@ func TestTrackerAccess(t *testing.T) {
 	}
 	// Another writer who may read the table may not change the tracker.
 	for _, sql := range []string{`SELECT sidetrend.untrack('sales')`, `SELECT sidetrend.rebuild('sales')`,
-		`SELECT sidetrend.request_tune('sales')`, `SELECT * FROM sidetrend.tune('sales')`} {
+		`SELECT sidetrend.request_tune('sales')`, `SELECT * FROM sidetrend.tune('sales')`,
+		`SELECT sidetrend.alter_tracker('sales', horizon => 3)`} {
 		_, err := m.Exec(ctx, sql)
 		wantSQLState(t, "another writer: "+sql, err, "42501", "it belongs to role")
 	}
 	// Calling the function behind track() with another role's name.
 	_, err := m.Exec(ctx, `SELECT sidetrend._untrack_as($1, 'sales')`, e.roles["wendy"])
 	wantSQLState(t, "untrack in another role's name", err, "42501", "may not act as role")
+	_, err = m.Exec(ctx, `SELECT sidetrend._alter_tracker_as($1, 'sales', 3, NULL, NULL, NULL, NULL, false, NULL, NULL, NULL, NULL, NULL)`, e.roles["wendy"])
+	wantSQLState(t, "alter in another role's name", err, "42501", "may not act as role")
+	// Its owner may (and a member of sidetrend_admin, below).
+	if _, err := w.Exec(ctx, `SELECT sidetrend.alter_tracker('sales', horizon => 3)`); err != nil {
+		t.Errorf("the owner alters its tracker: %v", err)
+	}
+	if _, err := ada.Exec(ctx, `SELECT sidetrend.alter_tracker('sales', horizon => 2)`); err != nil {
+		t.Errorf("a member of sidetrend_admin alters a tracker: %v", err)
+	}
 	// An administrator may.
 	if _, err := ada.Exec(ctx, `SELECT sidetrend.request_tune('sales')`); err != nil {
 		t.Errorf("a member of sidetrend_admin requests tuning: %v", err)

@@ -40,6 +40,7 @@ type TrackerStatus struct {
 	Warming    int64 `json:"warming"`
 	Rebuilding int64 `json:"rebuilding"` // series waiting for a replay
 	WithError  int64 `json:"series_with_error"`
+	Failed     int64 `json:"series_failed"` // of which failed to fold (they keep their last forecasts)
 
 	PendingChanges int64      `json:"pending_changes"`
 	LagSeconds     float64    `json:"lag_seconds"`
@@ -63,11 +64,12 @@ type SeriesError struct {
 const statusTrackersSQL = `
 SELECT t.id, t.name, t.source_name, t.bucket::text, t.tz, t.agg, t.degree, coalesce(t.period, 0), t.harmonics,
        t.lambda, t.burn_in, t.horizon, t.status, t.backfilled, t.last_error,
-       coalesce(s.n, 0), coalesce(s.ready, 0), coalesce(s.rebuild, 0), coalesce(s.errors, 0), s.updated
+       coalesce(s.n, 0), coalesce(s.ready, 0), coalesce(s.rebuild, 0), coalesce(s.errors, 0), coalesce(s.failed, 0), s.updated
 FROM sidetrend.trackers t
 LEFT JOIN (
     SELECT tracker_id, count(*) AS n, count(*) FILTER (WHERE ready) AS ready,
            count(*) FILTER (WHERE rebuild) AS rebuild, count(*) FILTER (WHERE last_error IS NOT NULL) AS errors,
+           count(*) FILTER (WHERE failed) AS failed,
            max(updated_at) AS updated
     FROM sidetrend.series GROUP BY tracker_id
 ) s ON s.tracker_id = t.id
@@ -84,9 +86,9 @@ SELECT tracker_id, count(*), max(at) FROM sidetrend.rejects GROUP BY tracker_id`
 
 // statusSeriesErrorsSQL is the newest series error of each tracker.
 const statusSeriesErrorsSQL = `
-SELECT DISTINCT ON (tracker_id) tracker_id, series_key, last_error, updated_at
+SELECT DISTINCT ON (tracker_id) tracker_id, series_key, last_error, coalesce(error_at, updated_at)
 FROM sidetrend.series WHERE last_error IS NOT NULL
-ORDER BY tracker_id, updated_at DESC NULLS LAST, series_key`
+ORDER BY tracker_id, coalesce(error_at, updated_at) DESC NULLS LAST, series_key`
 
 // LoadStatus reads the status of every tracker. The counts are exact and
 // read the change log whole: it is meant for people and alerts, not for a
@@ -109,7 +111,7 @@ func LoadStatus(ctx context.Context, q querier) (*Status, error) {
 		var lambda *float64
 		if err := rows.Scan(&id, &ts.Name, &ts.Source, &ts.Bucket, &ts.TZ, &ts.Agg, &degree, &period, &harmonics,
 			&lambda, &burnIn, &ts.Horizon, &ts.Status, &ts.Backfilled, &ts.LastError,
-			&ts.Series, &ts.Ready, &ts.Rebuilding, &ts.WithError, &ts.LastUpdate); err != nil {
+			&ts.Series, &ts.Ready, &ts.Rebuilding, &ts.WithError, &ts.Failed, &ts.LastUpdate); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("status of trackers: %w", err)
 		}
@@ -253,4 +255,56 @@ func LoadLag(ctx context.Context, q querier) (Lag, error) {
 	}
 	l.OldestChange = time.Duration(max(secs, 0) * float64(time.Second))
 	return l, nil
+}
+
+// SeriesInfo is one series as `sidetrend status --series` lists it.
+type SeriesInfo struct {
+	Tracker string `json:"tracker"`
+	Key     string `json:"series_key"`
+	// State is ready, warming, replay (waiting to be replayed) or failed
+	// (its last fold failed; it keeps its last good forecasts).
+	State     string     `json:"state"`
+	Points    int64      `json:"points"`
+	Through   *time.Time `json:"folded_through"` // start of the newest folded bucket
+	UpdatedAt *time.Time `json:"updated_at"`
+	LastError *string    `json:"last_error"`
+	ErrorAt   *time.Time `json:"error_at"`
+}
+
+// seriesListSQL lists series by tracker and key: of tracker $1 (every
+// tracker when empty), only those with an error when $2, at most $3.
+const seriesListSQL = `
+SELECT t.name, s.series_key,
+       CASE WHEN s.failed THEN 'failed' WHEN s.rebuild THEN 'replay' WHEN s.ready THEN 'ready' ELSE 'warming' END,
+       s.points, CASE WHEN s.folded_through IS NOT NULL THEN sidetrend.bucket_start(s.folded_through, t.bucket, t.tz) END,
+       s.updated_at, s.last_error, s.error_at
+FROM sidetrend.series s JOIN sidetrend.trackers t ON t.id = s.tracker_id
+WHERE ($1 = '' OR t.name = $1) AND (NOT $2 OR s.last_error IS NOT NULL)
+ORDER BY t.name, s.series_key
+LIMIT $3`
+
+// SeriesStatus lists at most limit series of tracker (all trackers when it
+// is empty), only those with an error when onlyErrors. It also returns
+// whether more were left out.
+func SeriesStatus(ctx context.Context, q querier, tracker string, onlyErrors bool, limit int) ([]SeriesInfo, bool, error) {
+	rows, err := q.Query(ctx, seriesListSQL, tracker, onlyErrors, int64(limit)+1)
+	if err != nil {
+		return nil, false, fmt.Errorf("list series: %w", err)
+	}
+	defer rows.Close()
+	list := []SeriesInfo{}
+	for rows.Next() {
+		var s SeriesInfo
+		if err := rows.Scan(&s.Tracker, &s.Key, &s.State, &s.Points, &s.Through, &s.UpdatedAt, &s.LastError, &s.ErrorAt); err != nil {
+			return nil, false, fmt.Errorf("list series: %w", err)
+		}
+		list = append(list, s)
+	}
+	if err := rows.Err(); err != nil {
+		return nil, false, fmt.Errorf("list series: %w", err)
+	}
+	if len(list) > limit {
+		return list[:limit], true, nil
+	}
+	return list, false, nil
 }

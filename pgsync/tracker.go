@@ -31,6 +31,7 @@ type Tracker struct {
 	History    int // history_buckets: buckets of served forecasts kept
 	Backfilled bool
 	Status     string
+	Version    int // settings_version: moves with every sidetrend.alter_tracker
 
 	// cal numbers the tracker's buckets in Go, the twin of the SQL bucket
 	// functions (package calendar); calErr says why it could not be built
@@ -58,7 +59,7 @@ func (t *Tracker) buildCalendar() {
 
 const trackersSQL = `
 SELECT id, name, source_name, bucket::text, tz, agg, empty, degree, coalesce(period, 0), harmonics,
-       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status
+       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status, settings_version
 FROM sidetrend.trackers ORDER BY id`
 
 // LoadTrackers reads every tracker.
@@ -72,7 +73,7 @@ func LoadTrackers(ctx context.Context, q querier) (map[int]*Tracker, error) {
 		t := &Tracker{}
 		if err := rows.Scan(&t.ID, &t.Name, &t.Source, &t.Bucket, &t.TZ, &t.Agg, &t.Empty,
 			&t.Spec.Degree, &t.Spec.Period, &t.Spec.Harmonics, &t.Spec.Lambda, &t.LambdaAuto,
-			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status); err != nil {
+			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status, &t.Version); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("load trackers: %w", err)
 		}
@@ -166,10 +167,103 @@ func Track(ctx context.Context, pool *pgxpool.Pool, o TrackOptions) (int, error)
 	return id, nil
 }
 
-// Untrack calls sidetrend.untrack(name).
-func Untrack(ctx context.Context, pool *pgxpool.Pool, name string) error {
-	if _, err := pool.Exec(ctx, `SELECT sidetrend.untrack($1)`, name); err != nil {
-		return fmt.Errorf("untrack %s: %w", name, err)
+// Removed is what an untrack removed.
+type Removed struct {
+	Source                                      string
+	Series, Points, Changes, Rejects, Forecasts int64
+}
+
+// untrackCountsSQL counts what sidetrend.untrack is about to remove.
+const untrackCountsSQL = `
+SELECT t.source_name,
+       (SELECT count(*) FROM sidetrend.series s WHERE s.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.points p WHERE p.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.changes c WHERE c.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.rejects r WHERE r.tracker_id = t.id),
+       (SELECT count(*) FROM sidetrend.forecast_issues i WHERE i.tracker_id = t.id)
+FROM sidetrend.trackers t WHERE t.name = $1`
+
+// Untrack calls sidetrend.untrack(name) and says what it removed (counted
+// in the same transaction).
+func Untrack(ctx context.Context, pool *pgxpool.Pool, name string) (Removed, error) {
+	var r Removed
+	err := pgx.BeginFunc(ctx, pool, func(tx pgx.Tx) error {
+		// A name that is not a tracker leaves the counts at zero; untrack
+		// then says so.
+		if err := tx.QueryRow(ctx, untrackCountsSQL, name).Scan(&r.Source, &r.Series, &r.Points, &r.Changes, &r.Rejects, &r.Forecasts); err != nil && err != pgx.ErrNoRows {
+			return err
+		}
+		_, err := tx.Exec(ctx, `SELECT sidetrend.untrack($1)`, name)
+		return err
+	})
+	if err != nil {
+		return Removed{}, fmt.Errorf("untrack %s: %w", name, err)
 	}
-	return nil
+	return r, nil
+}
+
+// AlterOptions are the arguments of sidetrend.alter_tracker(); nil pointers
+// keep the tracker's setting.
+type AlterOptions struct {
+	Horizon    *int
+	Degree     *int
+	Period     *float64 // 0 removes the season
+	Harmonics  *int
+	Lambda     *float64
+	LambdaAuto bool // let the sidecar choose lambda
+	BurnIn     *int
+	History    *int    // history_buckets
+	Span       *string // interval text
+	TZ         *string
+	Bucket     *string // interval text
+}
+
+// AlterTracker calls sidetrend.alter_tracker() with named arguments and
+// returns its account of what changed and what follows.
+func AlterTracker(ctx context.Context, pool *pgxpool.Pool, name string, o AlterOptions) (string, error) {
+	args := pgx.NamedArgs{"name": name}
+	sql := `SELECT sidetrend.alter_tracker(name => @name`
+	add := func(arg string, v any, cast string) {
+		args[arg] = v
+		sql += fmt.Sprintf(", %s => @%s::%s", arg, arg, cast)
+	}
+	if o.Horizon != nil {
+		add("horizon", *o.Horizon, "int")
+	}
+	if o.Degree != nil {
+		add("degree", *o.Degree, "int")
+	}
+	if o.Period != nil {
+		add("period", *o.Period, "float8")
+	}
+	if o.Harmonics != nil {
+		add("harmonics", *o.Harmonics, "int")
+	}
+	if o.Lambda != nil {
+		add("lambda", *o.Lambda, "float8")
+	}
+	if o.LambdaAuto {
+		add("lambda_auto", true, "boolean")
+	}
+	if o.BurnIn != nil {
+		add("burn_in", *o.BurnIn, "int")
+	}
+	if o.History != nil {
+		add("history_buckets", *o.History, "int")
+	}
+	if o.Span != nil {
+		add("span", *o.Span, "interval")
+	}
+	if o.TZ != nil {
+		add("tz", *o.TZ, "text")
+	}
+	if o.Bucket != nil {
+		add("bucket", *o.Bucket, "interval")
+	}
+	sql += ")"
+	var msg string
+	if err := pool.QueryRow(ctx, sql, args).Scan(&msg); err != nil {
+		return "", fmt.Errorf("alter %s: %w", name, err)
+	}
+	return msg, nil
 }

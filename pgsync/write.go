@@ -100,7 +100,8 @@ WITH q AS (
         t80 = q.t80, t95 = q.t95, level = q.level, slope = q.slope, slope_se = q.slope_se,
         sigma = q.sigma, n_errors = q.n_errors, mae = q.mae, rmse = q.rmse, mape = q.mape,
         bias = q.bias, coverage80 = q.cov80, coverage95 = q.cov95,
-        last_error = q.last_error, last_direction = q.last_direction
+        last_error = q.last_error, last_direction = q.last_direction, failed = false,
+        error_at = CASE WHEN q.last_error IS NOT NULL THEN now() END
     FROM q
     WHERE s.tracker_id = q.tid AND s.series_key = q.key
     RETURNING q.tid, q.key, q.folded AS issued_for, q.forecast, q.se, q.t95, q.issue, q.prune

@@ -8,21 +8,66 @@ import (
 )
 
 // version is set at build time with -ldflags "-X main.version=..."; otherwise
-// it comes from the module build info.
-var version = ""
+// it comes from the module build info. commit likewise (make build sets it
+// from git): Go stamps the commit itself only in a checkout whose .git is a
+// directory, not in a git worktree.
+var version, commit = "", ""
 
 func versionString() string {
-	if version != "" {
-		return version
+	bi, _ := debug.ReadBuildInfo()
+	if commit != "" {
+		if bi == nil {
+			bi = &debug.BuildInfo{}
+		}
+		bi.Settings = append(bi.Settings, debug.BuildSetting{Key: "vcs.revision", Value: commit})
 	}
-	if bi, ok := debug.ReadBuildInfo(); ok && bi.Main.Version != "" {
-		return bi.Main.Version
+	return versionFrom(version, bi)
+}
+
+// versionFrom is the version line: the version given at build time or the
+// module's (a tagged module version, or "(devel)" for a build from a
+// checkout), then the commit and its time from the build's VCS stamp, with
+// "modified" when the checkout had uncommitted changes, and the Go version.
+func versionFrom(given string, bi *debug.BuildInfo) string {
+	v := given
+	if v == "" && bi != nil {
+		v = bi.Main.Version
 	}
-	return "devel"
+	if v == "" {
+		v = "(devel)"
+	}
+	if bi == nil {
+		return v
+	}
+	var rev, at string
+	modified := false
+	for _, s := range bi.Settings {
+		switch s.Key {
+		case "vcs.revision":
+			rev = s.Value
+		case "vcs.time":
+			at = s.Value
+		case "vcs.modified":
+			modified = s.Value == "true"
+		}
+	}
+	if rev != "" {
+		v += ", commit " + rev[:min(12, len(rev))]
+		if at != "" {
+			v += " of " + at
+		}
+		if modified {
+			v += " (modified)"
+		}
+	}
+	if bi.GoVersion != "" {
+		v += ", built with " + bi.GoVersion
+	}
+	return v
 }
 
 func newApp() *cli.App {
-	return &cli.App{
+	app := &cli.App{
 		Name:    "sidetrend",
 		Usage:   "keep short-term forecasts and trend slopes for Postgres time series current, served to plain SQL",
 		Version: versionString(),
@@ -36,6 +81,7 @@ func newApp() *cli.App {
 			migrateCommand(),
 			trackCommand(),
 			untrackCommand(),
+			alterCommand(),
 			runCommand(),
 			rebuildCommand(),
 			tuneCommand(),
@@ -53,4 +99,7 @@ func newApp() *cli.App {
 			},
 		},
 	}
+	withServerDetail(app.Commands)
+	withEnvVars(app.Commands, "SIDETREND")
+	return app
 }

@@ -118,6 +118,14 @@ func trackCommand() *cli.Command {
 	}
 }
 
+// count writes n and the noun in the number n calls for.
+func count(n int64, one, many string) string {
+	if n == 1 {
+		return "1 " + one
+	}
+	return fmt.Sprintf("%d %s", n, many)
+}
+
 func untrackCommand() *cli.Command {
 	return &cli.Command{
 		Name:      "untrack",
@@ -133,7 +141,16 @@ func untrackCommand() *cli.Command {
 				return err
 			}
 			defer pool.Close()
-			return pgsync.Untrack(c.Context, pool, c.Args().First())
+			name := c.Args().First()
+			r, err := pgsync.Untrack(c.Context, pool, name)
+			if err != nil {
+				return err
+			}
+			fmt.Fprintf(c.App.Writer, "untracked %s: removed its capture triggers, %s, %s, %s, %s and %s; %s itself is unchanged\n",
+				name, count(r.Series, "series", "series"), count(r.Points, "bucket point", "bucket points"),
+				count(r.Changes, "pending change", "pending changes"), count(r.Rejects, "reject", "rejects"),
+				count(r.Forecasts, "served forecast", "served forecasts"), r.Source)
+			return nil
 		},
 	}
 }
@@ -188,7 +205,20 @@ func rebuildCommand() *cli.Command {
 				return err
 			}
 			st := s.Stats()
-			fmt.Fprintf(c.App.Writer, "rebuilt %d trackers: %d series replayed\n", len(names), st.Rebuilds)
+			what := count(int64(len(names)), "tracker", "trackers") + " queued for a reread from the source"
+			if c.IsSet("series") {
+				what = fmt.Sprintf("series %q of tracker %s queued for a reread from the source", c.String("series"), names[0])
+			}
+			if c.IsSet("series") {
+				fmt.Fprintf(c.App.Writer, "%s; this run replayed %s", what, count(st.Rebuilds, "series", "series"))
+			} else {
+				fmt.Fprintf(c.App.Writer, "%s; this run reread %s and replayed %s", what,
+					count(st.Backfills, "tracker", "trackers"), count(st.Rebuilds, "series", "series"))
+				if st.Backfills < int64(len(names)) {
+					fmt.Fprint(c.App.Writer, " (a running sidecar took the rest)")
+				}
+			}
+			fmt.Fprintln(c.App.Writer)
 			return nil
 		},
 	}

@@ -35,16 +35,29 @@ const demoTracker = "demo_takings"
 // demoFocus is the workshop whose forecast the demo prints and draws.
 const demoFocus = "brindlecombe"
 
-// demoFirstDay and demoHistoryDays: the history loaded before tracking runs
-// from 2024-04-01 to 2025-04-12; live days follow from 2025-04-13.
-var demoFirstDay = time.Date(2024, 4, 1, 0, 0, 0, 0, time.UTC)
+// demoFirstDay and demoHistoryDays: the history loaded before tracking is
+// demoHistoryDays days from demoFirstDay, and the live days follow, so that
+// the newest day is yesterday (UTC): the README's now()-based recipes ("next
+// month", "rest of this month") return the rows they promise. runDemo sets
+// demoFirstDay (demoStart).
+var demoFirstDay = demoStart(time.Now(), 0)
 
 const demoHistoryDays = 377
 
-// demoMaxLiveDays caps the live days so that the newest day stays in April
-// 2025 with at most 14 days (the horizon) left in the month: the month-end
-// projection then has a cumulative forecast for every remaining day.
+// demoMaxLiveDays caps the live days.
 const demoMaxLiveDays = 15
+
+// demoStart is the first day of the history when liveDays live days follow
+// it and the newest of them is the day before now (UTC).
+func demoStart(now time.Time, liveDays int) time.Time {
+	yesterday := time.Date(now.Year(), now.Month(), now.Day(), 0, 0, 0, 0, time.UTC).AddDate(0, 0, -1)
+	return yesterday.AddDate(0, 0, -(demoHistoryDays + liveDays - 1))
+}
+
+// demoLiveDays is how many live days the options give.
+func demoLiveDays(o demoOptions) int {
+	return max(0, min(int(o.live/o.every), demoMaxLiveDays))
+}
 
 // demoWaitTimeout bounds each wait for the sidecar.
 const demoWaitTimeout = 30 * time.Second
@@ -163,7 +176,7 @@ COMMENT ON SCHEMA sidetrend_demo IS 'Made by sidetrend demo: repair jobs and bud
 
 const demoTrackSQL = `SELECT sidetrend.track('sidetrend_demo.repair_jobs', 'finished_on', 'amount', '{branch}',
                        bucket => '1 day', period => 7, harmonics => 2, lambda => 0.98,
-                       horizon => 14, name => 'demo_takings');`
+                       horizon => 62, name => 'demo_takings');`
 
 const demoForecastSQL = `SELECT horizon AS ahead,
        (period_start AT TIME ZONE 'UTC')::date AS day,
@@ -176,7 +189,7 @@ const demoForecastSQL = `SELECT horizon AS ahead,
        round(cum_forecast::numeric) AS cum_forecast,
        round(cum_upper95::numeric) AS cum_upper95
 FROM sidetrend.forecasts
-WHERE tracker = 'demo_takings' AND series_key = 'brindlecombe'
+WHERE tracker = 'demo_takings' AND series_key = 'brindlecombe' AND horizon <= 14
 ORDER BY horizon;`
 
 const demoSlopesSQL = `SELECT series_key AS branch,
@@ -225,6 +238,16 @@ ORDER BY branch;`
 const demoCaution = "Caution: forecasts and intervals are estimates under model assumptions (a local trend with a\n" +
 	"weekly cycle, independent errors of constant variance); real takings can break them. Use them\n" +
 	"to inform decisions; the decisions stay with people."
+
+// selfCommand is how to run this binary again from the current directory:
+// as it was started when that was a path to a sidetrend binary
+// (./bin/sidetrend), else sidetrend from PATH.
+func selfCommand() string {
+	if a := os.Args[0]; filepath.Base(a) == "sidetrend" {
+		return shellQuote(a)
+	}
+	return "sidetrend"
+}
 
 func demoCommand() *cli.Command {
 	return &cli.Command{
@@ -279,6 +302,7 @@ func runDemo(ctx context.Context, w io.Writer, o demoOptions) (err error) {
 		o.chart = filepath.Join(os.TempDir(), "sidetrend-demo.png")
 	}
 
+	demoFirstDay = demoStart(time.Now(), demoLiveDays(o))
 	fmt.Fprintln(w, "sidetrend demo: Spokes & Sprockets, five bicycle-repair workshops (an invented business).")
 	fmt.Fprintln(w, "Every repair job is a row; sidetrend keeps forecasts of each workshop's daily takings.")
 	fmt.Fprintln(w)
@@ -294,9 +318,14 @@ func runDemo(ctx context.Context, w io.Writer, o demoOptions) (err error) {
 		defer func() {
 			if o.keep && err == nil {
 				emb.srv.Detach()
-				fmt.Fprintf(w, "\nThe private Postgres keeps running (data in %s).\n  explore: %s\n  URL:     %s\n  stop:    kill -INT %d\n",
-					emb.srv.DataDir(), emb.psqlCommand("postgres"), emb.url, emb.srv.PID())
-				fmt.Fprintf(w, "The sidecar stopped with the demo; `sidetrend run --db '%s'` keeps the forecasts current.\n", emb.url)
+				self, url := selfCommand(), shellQuote(emb.url)
+				fmt.Fprintf(w, "\nThe private Postgres keeps running (data in %s).\n", emb.srv.DataDir())
+				fmt.Fprintf(w, "  explore: %s\n", emb.psqlCommand("postgres"))
+				fmt.Fprintf(w, "  URL:     %s\n", emb.url)
+				fmt.Fprintf(w, "  sidecar: %s run --db %s   (the demo's sidecar stopped with it; this keeps the forecasts current)\n", self, url)
+				fmt.Fprintf(w, "  status:  %s status --db %s\n", self, url)
+				fmt.Fprintf(w, "  stop:    kill -INT %d\n", emb.srv.PID())
+				fmt.Fprintf(w, "  remove:  rm -rf %s   (once stopped: the data and the server's log)\n", shellQuote(filepath.Dir(emb.srv.DataDir())))
 				return
 			}
 			emb.stop(log)
@@ -398,7 +427,7 @@ func demoSetup(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.R
 		return fmt.Errorf("look for an earlier demo: %w", err)
 	}
 	if old {
-		if err := pgsync.Untrack(ctx, pool, demoTracker); err != nil {
+		if _, err := pgsync.Untrack(ctx, pool, demoTracker); err != nil {
 			return err
 		}
 	}
@@ -426,7 +455,11 @@ func demoSetup(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.R
 	}
 	var budgets [][]any
 	for _, b := range demoBranches {
-		for m := demoFirstDay; m.Before(time.Date(2025, 7, 1, 0, 0, 0, 0, time.UTC)); m = m.AddDate(0, 1, 0) {
+		// Budgets for every month of the data and the next two.
+		end := demoFirstDay.AddDate(0, 0, demoHistoryDays+demoMaxLiveDays)
+		end = time.Date(end.Year(), end.Month()+3, 1, 0, 0, 0, 0, time.UTC)
+		first := time.Date(demoFirstDay.Year(), demoFirstDay.Month(), 1, 0, 0, 0, 0, time.UTC)
+		for m := first; m.Before(end); m = m.AddDate(0, 1, 0) {
 			budgets = append(budgets, []any{b.key, m, demoBudget(b, m)})
 		}
 	}
@@ -482,7 +515,7 @@ const demoLiveSlopesSQL = `SELECT series_key, slope FROM sidetrend.slopes WHERE 
 // (at most demoMaxLiveDays) and prints, after the sidecar has taken each
 // in, the focus workshop's next-day forecast and every slope.
 func demoLive(ctx context.Context, w io.Writer, pool *pgxpool.Pool, rng *rand.Rand, caught <-chan struct{}, o demoOptions) error {
-	days := min(int(o.live/o.every), demoMaxLiveDays)
+	days := demoLiveDays(o)
 	if days <= 0 {
 		return nil
 	}

@@ -36,8 +36,15 @@ func TestDemo(t *testing.T) {
 			t.Errorf("the output does not show the SQL it ran:\n%s", sql)
 		}
 	}
-	// 1s / 250ms = 4 live days, 2025-04-13 to 2025-04-16, each a line.
-	for _, day := range []string{"2025-04-13", "2025-04-14", "2025-04-15", "2025-04-16"} {
+	// 1s / 250ms = 4 live days, each a line.
+	// They end yesterday (UTC).
+	now := time.Now().UTC()
+	yesterday := time.Date(now.Year(), now.Month(), now.Day(), 0, 0, 0, 0, time.UTC).AddDate(0, 0, -1)
+	var days []string
+	for i := 3; i >= 0; i-- {
+		days = append(days, yesterday.AddDate(0, 0, -i).Format(time.DateOnly))
+	}
+	for _, day := range days {
 		// new day, takings, next day, lower95, forecast, upper95, a bar
 		if !regexp.MustCompile(`(?m)^` + day + ` +[0-9.]+ +\w{3} \d\d +\d+ +\d+ +\d+ \|`).MatchString(out) {
 			t.Errorf("no live line for %s in:\n%s", day, out)
@@ -64,6 +71,69 @@ func TestDemo(t *testing.T) {
 	}
 
 	checkMonthEnd(t, url)
+	checkNowRecipes(t, url)
+}
+
+// checkNowRecipes runs the now()-based recipes of sql/README.md on the
+// demo's data, which end yesterday: next month has a forecast for each of
+// its days, and the rest of this month one row per workshop.
+func checkNowRecipes(t *testing.T, url string) {
+	ctx := context.Background()
+	pool, err := pgsync.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pool.Close()
+	raw, err := os.ReadFile("../../sql/README.md")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var recipes []string
+	for _, block := range strings.Split(string(raw), "```sql\n")[1:] {
+		recipes = append(recipes, strings.SplitN(block, "```", 2)[0])
+	}
+	find := func(marker string) string {
+		for _, r := range recipes {
+			if strings.Contains(r, marker) {
+				return r
+			}
+		}
+		t.Fatalf("no recipe with %q in sql/README.md", marker)
+		return ""
+	}
+	if _, err := pool.Exec(ctx, `SET TimeZone = 'UTC'`); err != nil {
+		t.Fatal(err)
+	}
+	now := time.Now().UTC()
+	next := time.Date(now.Year(), now.Month()+1, 1, 0, 0, 0, 0, time.UTC)
+	days := next.AddDate(0, 1, 0).Sub(next).Hours() / 24
+	rows, err := pool.Query(ctx, find("AS next_month"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	n := 0
+	for rows.Next() {
+		vals, err := rows.Values()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if b, _ := vals[3].(int64); float64(b) != days {
+			t.Errorf("next month: %v has %v buckets, want %v", vals[1], vals[3], days)
+		}
+		n++
+	}
+	if n != len(demoBranches) {
+		t.Errorf("next month: %d rows, want %d", n, len(demoBranches))
+	}
+	var rest int
+	if err := pool.QueryRow(ctx, `SELECT count(*) FROM (`+strings.TrimSuffix(strings.TrimSpace(find("the rest of this month")), ";")+`) r`).Scan(&rest); err != nil {
+		t.Fatal(err)
+	}
+	// The data end yesterday, so every day of this month from today on is
+	// forecast (on the first of a month, all of them).
+	if rest != len(demoBranches) {
+		t.Errorf("rest of this month: %d rows, want %d", rest, len(demoBranches))
+	}
 }
 
 // checkMonthEnd recomputes the month-end projection without the views:
@@ -149,6 +219,12 @@ func TestDemoPrivateServer(t *testing.T) {
 	dataDir := regexp.MustCompile(`keeps running \(data in (.*)\)\.`).FindStringSubmatch(out)
 	if stop == nil || psql == nil || dataDir == nil {
 		t.Fatalf("no psql command, pid or data directory in:\n%s", out)
+	}
+	for _, want := range []string{"  sidecar: sidetrend run --db 'postgres://", "  status:  sidetrend status --db 'postgres://",
+		"  remove:  rm -rf " + filepath.Dir(dataDir[1])} {
+		if !strings.Contains(out, want) {
+			t.Errorf("demo --keep does not print %q:\n%s", want, out)
+		}
 	}
 	pid, _ := strconv.Atoi(stop[1])
 	t.Cleanup(func() {

@@ -305,6 +305,17 @@ func readForecastCSV(in io.Reader, name string, o forecastOptions) ([]*csvSeries
 	return out, nil
 }
 
+// instantLayouts are the times with an offset the CSV reader accepts: RFC
+// 3339, and what Postgres writes for a timestamptz (COPY ... CSV, psql):
+// a space for the T, fractional seconds when there are any, and an offset
+// of hours (+00, -07) or hours and minutes (+05:30).
+var instantLayouts = []string{
+	time.RFC3339Nano,
+	"2006-01-02 15:04:05.999999999Z07",
+	"2006-01-02 15:04:05.999999999Z07:00",
+	"2006-01-02T15:04:05.999999999Z07",
+}
+
 // parseRowTime reads a CSV time and returns it as an instant (for ordering
 // rows within a bucket) with its bucket number. A time with an offset is an
 // instant; one without is wall-clock time in the calendar's zone.
@@ -312,8 +323,10 @@ func parseRowTime(s string, cal calendar.Calendar, loc *time.Location) (time.Tim
 	if s == "" {
 		return time.Time{}, 0, errors.New("is empty: give every row a time")
 	}
-	if t, err := time.Parse(time.RFC3339Nano, s); err == nil {
-		return t, cal.Index(t), nil
+	for _, layout := range instantLayouts {
+		if t, err := time.Parse(layout, s); err == nil {
+			return t, cal.Index(t), nil
+		}
 	}
 	for _, layout := range wallLayouts {
 		if w, err := time.Parse(layout, s); err == nil {
@@ -321,8 +334,8 @@ func parseRowTime(s string, cal calendar.Calendar, loc *time.Location) (time.Tim
 			return at, cal.IndexLocal(w), nil
 		}
 	}
-	return time.Time{}, 0, errors.New("is not a time: write RFC 3339 (2026-03-01T09:30:00+01:00), " +
-		"or 2026-03-01 09:30:00 or 2026-03-01 for wall-clock time in --tz")
+	return time.Time{}, 0, errors.New("is not a time: write RFC 3339 (2026-03-01T09:30:00+01:00) or as Postgres writes it " +
+		"(2026-03-01 09:30:00+01), or 2026-03-01 09:30:00 or 2026-03-01 for wall-clock time in --tz")
 }
 
 // values returns the series' bucket values from its first to its last

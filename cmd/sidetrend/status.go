@@ -17,10 +17,16 @@ import (
 func statusCommand() *cli.Command {
 	return &cli.Command{
 		Name:  "status",
-		Usage: "show trackers, series counts, lag, rejects and the newest errors",
+		Usage: "show trackers, series counts, lag, rejects and the series in error",
+		Description: "Shows every tracker with its counts and errors, then the series whose last fold had an error\n" +
+			"(at most --limit). With --series it lists the series themselves: key, state, points, newest folded\n" +
+			"bucket and error, of every tracker or of --tracker.",
 		Flags: []cli.Flag{
 			dbFlag,
-			&cli.StringFlag{Name: "format", Value: "table", Usage: "table (aligned text) or json"},
+			&cli.StringFlag{Name: "format", Value: "table", Usage: "table (aligned text) or json", EnvVars: []string{"SIDETREND_STATUS_FORMAT"}},
+			&cli.BoolFlag{Name: "series", Usage: "list the series (key, state, points, newest folded bucket, error)", EnvVars: []string{"SIDETREND_STATUS_SERIES"}},
+			&cli.StringFlag{Name: "tracker", Usage: "only the series of this tracker (with --series)", EnvVars: []string{"SIDETREND_STATUS_TRACKER"}},
+			&cli.IntFlag{Name: "limit", Value: 100, Usage: "list at most this many series", EnvVars: []string{"SIDETREND_STATUS_LIMIT"}},
 		},
 		Action: func(c *cli.Context) error {
 			format := c.String("format")
@@ -32,16 +38,49 @@ func statusCommand() *cli.Command {
 				return err
 			}
 			defer pool.Close()
+			limit := c.Int("limit")
+			if limit < 1 {
+				return fmt.Errorf("--limit %d lists nothing: use 1 or more", limit)
+			}
+			if c.String("tracker") != "" && !c.Bool("series") {
+				return fmt.Errorf("--tracker picks the series to list: add --series")
+			}
 			st, err := pgsync.LoadStatus(c.Context, pool)
 			if err != nil {
 				return err
 			}
-			if format == "json" {
-				enc := json.NewEncoder(c.App.Writer)
-				enc.SetIndent("", "  ")
-				return enc.Encode(st)
+			if c.Bool("series") {
+				if name := c.String("tracker"); name != "" && !hasTracker(st, name) {
+					return fmt.Errorf("no tracker named %q: see the trackers `sidetrend status` lists", name)
+				}
+				list, more, err := pgsync.SeriesStatus(c.Context, pool, c.String("tracker"), false, limit)
+				if err != nil {
+					return err
+				}
+				if format == "json" {
+					return writeJSON(c.App.Writer, map[string]any{"series": list, "more": more})
+				}
+				return writeSeriesTable(c.App.Writer, list, more, limit)
 			}
-			return writeStatusTable(c.App.Writer, st)
+			errs, more, err := pgsync.SeriesStatus(c.Context, pool, "", true, limit)
+			if err != nil {
+				return err
+			}
+			if format == "json" {
+				return writeJSON(c.App.Writer, struct {
+					*pgsync.Status
+					SeriesErrors []pgsync.SeriesInfo `json:"series_errors"`
+					More         bool                `json:"series_errors_more"`
+				}{st, errs, more})
+			}
+			if err := writeStatusTable(c.App.Writer, st); err != nil {
+				return err
+			}
+			if len(errs) > 0 {
+				fmt.Fprintln(c.App.Writer, "\nSeries in error:")
+				return writeSeriesTable(c.App.Writer, errs, more, limit)
+			}
+			return nil
 		},
 	}
 }
@@ -57,11 +96,11 @@ func writeStatusTable(w io.Writer, st *pgsync.Status) error {
 		return nil
 	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, "tracker\tsource\tbucket\tmodel\tstatus\tbackfilled\tready\twarming\treplay\tpending\tlag\trejects")
+	fmt.Fprintln(tw, "tracker\tsource\tbucket\tmodel\tstatus\tbackfilled\tready\twarming\treplay\tfailed\tpending\tlag\trejects")
 	for _, t := range st.Trackers {
-		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%s\t%d\n",
+		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%d\n",
 			t.Name, t.Source, t.Bucket, t.Model, t.Status, yesNo(t.Backfilled),
-			t.Ready, t.Warming, t.Rebuilding, t.PendingChanges, seconds(t.LagSeconds), t.Rejects)
+			t.Ready, t.Warming, t.Rebuilding, t.Failed, t.PendingChanges, seconds(t.LagSeconds), t.Rejects)
 	}
 	if err := tw.Flush(); err != nil {
 		return err
@@ -83,6 +122,52 @@ func writeStatusTable(w io.Writer, st *pgsync.Status) error {
 	if len(errs) > 0 {
 		fmt.Fprintln(w, "\nLast errors:")
 		fmt.Fprintln(w, strings.Join(errs, "\n"))
+	}
+	return nil
+}
+
+func hasTracker(st *pgsync.Status, name string) bool {
+	for _, t := range st.Trackers {
+		if t.Name == name {
+			return true
+		}
+	}
+	return false
+}
+
+func writeJSON(w io.Writer, v any) error {
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(v)
+}
+
+// writeSeriesTable prints series one a line: tracker, key, state, points,
+// newest folded bucket, and the error with its time.
+func writeSeriesTable(w io.Writer, list []pgsync.SeriesInfo, more bool, limit int) error {
+	if len(list) == 0 {
+		fmt.Fprintln(w, "No series.")
+		return nil
+	}
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, "tracker\tseries_key\tstate\tpoints\tfolded_through\terror")
+	for _, s := range list {
+		through, msg := "-", ""
+		if s.Through != nil {
+			through = s.Through.UTC().Format(time.DateTime)
+		}
+		if s.LastError != nil {
+			msg = oneLine(*s.LastError)
+			if s.ErrorAt != nil {
+				msg = s.ErrorAt.UTC().Format(time.DateTime) + " UTC: " + msg
+			}
+		}
+		fmt.Fprintf(tw, "%s\t%q\t%s\t%d\t%s\t%s\n", s.Tracker, s.Key, s.State, s.Points, through, msg)
+	}
+	if err := tw.Flush(); err != nil {
+		return err
+	}
+	if more {
+		fmt.Fprintf(w, "(only the first %d: raise --limit, or pick one tracker with --series --tracker NAME)\n", limit)
 	}
 	return nil
 }

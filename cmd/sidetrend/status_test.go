@@ -17,7 +17,7 @@ func TestStatus(t *testing.T) {
 	for _, sql := range []string{
 		`INSERT INTO public.sales VALUES ('north', '2025-05-20', NULL)`,
 		`INSERT INTO public.sales VALUES ('south', '2025-05-20', 140)`,
-		`UPDATE sidetrend.series SET last_error = 'bucket 9000: value too large' WHERE series_key = 'south'`,
+		`UPDATE sidetrend.series SET last_error = 'bucket 9000: value too large', error_at = now(), failed = true WHERE series_key = 'south'`,
 	} {
 		if _, err := pool.Exec(ctx, sql); err != nil {
 			t.Fatalf("%s: %v", sql, err)
@@ -85,6 +85,34 @@ func TestStatus(t *testing.T) {
 		if !strings.Contains(out, s) {
 			t.Errorf("status table lacks %q:\n%s", s, out)
 		}
+	}
+
+	for _, s := range []string{"Series in error:", "series_key", `"south"`, "failed", "UTC: bucket 9000: value too large"} {
+		if !strings.Contains(out, s) {
+			t.Errorf("status table lacks %q in the series in error:\n%s", s, out)
+		}
+	}
+	if tr["series_failed"] != 1.0 {
+		t.Errorf("series_failed %v, want 1", tr["series_failed"])
+	}
+
+	// --series lists every series key with its state.
+	out, err = runCLI(t, ctx, "status", "--db", url, "--series", "--tracker", "sales")
+	if err != nil {
+		t.Fatalf("status --series: %v\n%s", err, out)
+	}
+	t.Logf("status --series:\n%s", out)
+	for _, s := range []string{`"north"`, "ready", `"south"`, "failed", "folded_through"} {
+		if !strings.Contains(out, s) {
+			t.Errorf("status --series lacks %q:\n%s", s, out)
+		}
+	}
+	out, err = runCLI(t, ctx, "status", "--db", url, "--series", "--limit", "1", "--format", "json")
+	if err != nil || !strings.Contains(out, `"north"`) || strings.Contains(out, `"south"`) || !strings.Contains(out, `"more": true`) {
+		t.Errorf("status --series --limit 1 --format json: %v\n%s", err, out)
+	}
+	if _, err := runCLI(t, ctx, "status", "--db", url, "--series", "--tracker", "nope"); err == nil || !strings.Contains(err.Error(), `no tracker named "nope"`) {
+		t.Errorf("status --series --tracker nope: %v, want no tracker named", err)
 	}
 
 	if _, err := runCLI(t, ctx, "status", "--db", url, "--format", "yaml"); err == nil || !strings.Contains(err.Error(), "use table or json") {
