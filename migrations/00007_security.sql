@@ -129,19 +129,20 @@ BEGIN
         RETURN;
     END IF;
 
-    IF value_col IS NULL OR value_col = '' THEN
-        code := '22023'; message := 'value_col is missing'; hint := format('Pass value_col => one of: %s.', v_cols);
+    IF value_col IS NULL THEN
+        code := '22023'; message := 'value_col is missing'; hint := format('Pass value_col => one of: %s (or agg => ''count'', which needs none).', v_cols);
         RETURN;
     END IF;
     v_type := NULL;
     SELECT a.atttypid::regtype INTO v_type FROM pg_attribute a
     WHERE a.attrelid = source_problem.source AND a.attname = value_col AND a.attnum > 0 AND NOT a.attisdropped;
-    IF v_type IS NULL THEN
+    IF v_type IS NULL AND value_col <> '' THEN
         code := '42703'; message := format('column "%s" does not exist in %s', value_col, v_rel);
         hint := format('Pass value_col => one of: %s.', v_cols);
         RETURN;
     END IF;
-    IF v_type NOT IN ('smallint'::regtype, 'integer'::regtype, 'bigint'::regtype, 'real'::regtype,
+    -- value_col '' is a count tracker's: no value column.
+    IF value_col <> '' AND v_type NOT IN ('smallint'::regtype, 'integer'::regtype, 'bigint'::regtype, 'real'::regtype,
                       'double precision'::regtype, 'numeric'::regtype) THEN
         code := '42804'; message := format('value column "%s" of %s has type %s, which is not numeric', value_col, v_rel, v_type);
         hint := 'Pass a smallint, integer, bigint, real, double precision or numeric column as value_col (domains and types of your own are not read: their casts would run with sidetrend''s rights).';
@@ -291,7 +292,9 @@ BEGIN
     WHERE a.attrelid = t.source AND a.attname = t.value_col AND NOT a.attisdropped;
 
     v_t := format('r.%I', t.time_col);
-    v_v := format('r.%I', t.value_col);
+    -- A count tracker without a value column (value_col ''): every row
+    -- counts 1.
+    v_v := CASE WHEN t.value_col = '' THEN '1' ELSE format('r.%I', t.value_col) END;
     v_tstz := CASE t.time_type
         WHEN 'timestamptz' THEN v_t
         WHEN 'timestamp' THEN format('(%s AT TIME ZONE %L)', v_t, t.tz)
@@ -669,6 +672,7 @@ DECLARE
     v_name     text;
     v_empty    text := coalesce(_track_as.empty, CASE WHEN _track_as.agg IN ('sum', 'count') THEN 'zero' ELSE 'gap' END);
     v_span     interval;
+    v_value    text;
     v_timeout  text := current_setting('lock_timeout');
     p          record;
 BEGIN
@@ -686,7 +690,17 @@ BEGIN
         RAISE EXCEPTION 'tracker name "%" is not usable: it is longer than 200 characters or holds control characters', left(v_name, 40)
             USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass name => a short printable name such as ''daily_sales''.';
     END IF;
-    p := sidetrend.source_problem(_track_as.source, _track_as.time_col, _track_as.value_col, _track_as.key_cols, NULL);
+    IF coalesce(_track_as.value_col, '') = '' THEN
+        IF _track_as.agg IS DISTINCT FROM 'count' THEN
+            RAISE EXCEPTION 'value_col is missing'
+                USING ERRCODE = 'invalid_parameter_value',
+                      HINT = 'Pass value_col => a numeric column, or agg => ''count'', which counts rows and needs none.';
+        END IF;
+        v_value := '';
+    ELSE
+        v_value := _track_as.value_col;
+    END IF;
+    p := sidetrend.source_problem(_track_as.source, _track_as.time_col, v_value, _track_as.key_cols, NULL);
     IF p.code IS NOT NULL THEN
         RAISE EXCEPTION '%', p.message USING ERRCODE = p.code, HINT = p.hint;
     END IF;
@@ -768,7 +782,7 @@ BEGIN
 
     INSERT INTO sidetrend.trackers (name, source, source_name, time_col, time_type, value_col, key_cols, bucket, agg,
                                     degree, period, harmonics, lambda, burn_in, horizon, empty, tz, owner, span)
-    VALUES (v_name, _track_as.source, _track_as.source::text, _track_as.time_col, 'timestamptz', _track_as.value_col,
+    VALUES (v_name, _track_as.source, _track_as.source::text, _track_as.time_col, 'timestamptz', v_value,
             coalesce(_track_as.key_cols, '{}'), _track_as.bucket, _track_as.agg, _track_as.degree, _track_as.period,
             coalesce(_track_as.harmonics, 0), _track_as.lambda, _track_as.burn_in, _track_as.horizon, v_empty,
             _track_as.tz, caller, v_span)

@@ -346,7 +346,7 @@ COMMENT ON COLUMN sidetrend.series_status.error_at IS 'When last_error was writt
 COMMENT ON COLUMN sidetrend.tracker_settings.tracker IS 'Tracker name.';
 COMMENT ON COLUMN sidetrend.tracker_settings.source IS 'The tracked table, schema-qualified.';
 COMMENT ON COLUMN sidetrend.tracker_settings.time_col IS 'Column of the row''s time.';
-COMMENT ON COLUMN sidetrend.tracker_settings.value_col IS 'Column of the row''s value.';
+COMMENT ON COLUMN sidetrend.tracker_settings.value_col IS 'Column of the row''s value ('''' for a count tracker, which counts rows and needs none).';
 COMMENT ON COLUMN sidetrend.tracker_settings.key_cols IS 'Columns whose values name a series.';
 COMMENT ON COLUMN sidetrend.tracker_settings.bucket IS 'Bucket width.';
 COMMENT ON COLUMN sidetrend.tracker_settings.agg IS 'How a bucket''s rows make its value: sum, mean, min, max, last or count.';

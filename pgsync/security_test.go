@@ -641,3 +641,33 @@ func TestTrackerAccess(t *testing.T) {
 		t.Errorf("the owner untracks: %v", err)
 	}
 }
+
+// TestCountWithoutValue: a count tracker needs no value column (track(...,
+// value_col => NULL, agg => 'count')); any other aggregate does.
+func TestCountWithoutValue(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	exec(t, pool, `CREATE TABLE visits (at timestamptz, door text)`)
+	_, err := pool.Exec(ctx, `SELECT sidetrend.track('visits', 'at', NULL, '{door}')`)
+	wantSQLState(t, "sum without a value column", err, "22023", "value_col is missing")
+	exec(t, pool, `SELECT sidetrend.track('visits', 'at', NULL, '{door}', agg => 'count', degree => 0, horizon => 2)`)
+	day := time.Now().UTC().Truncate(24 * time.Hour)
+	exec(t, pool, `INSERT INTO visits SELECT $1::timestamptz - d * interval '1 day', 'north' FROM generate_series(1, 3) d, generate_series(1, 4) n`, day)
+	exec(t, pool, `INSERT INTO visits VALUES (NULL, 'north')`)
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	rows, err := pool.Query(ctx, `SELECT value FROM sidetrend.actuals WHERE tracker = 'visits' ORDER BY bucket`)
+	if err != nil {
+		t.Fatal(err)
+	}
+	counts, err := pgx.CollectRows(rows, pgx.RowTo[float64])
+	if err != nil || fmt.Sprint(counts) != "[4 4 4]" {
+		t.Errorf("daily counts %v (err %v), want [4 4 4]", counts, err)
+	}
+	var reason string
+	if err := pool.QueryRow(ctx, `SELECT reason FROM sidetrend.rejects`).Scan(&reason); err != nil || reason != "time is NULL" {
+		t.Errorf("reject %q (err %v), want time is NULL", reason, err)
+	}
+}

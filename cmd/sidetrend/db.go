@@ -55,7 +55,7 @@ func trackCommand() *cli.Command {
 			dbFlag,
 			&cli.StringFlag{Name: "table", Required: true, Usage: "source table, optionally schema-qualified"},
 			&cli.StringFlag{Name: "time", Required: true, Usage: "time column (date, timestamp or timestamptz)"},
-			&cli.StringFlag{Name: "value", Required: true, Usage: "numeric value column"},
+			&cli.StringFlag{Name: "value", Usage: "numeric value column (not needed with --agg count)"},
 			&cli.StringSliceFlag{Name: "key", Usage: "key column naming a series; repeat for several"},
 			&cli.StringFlag{Name: "bucket", Value: "1 day", Usage: "bucket width as a Postgres interval ('15 minutes', '1 day', '1 month')"},
 			&cli.StringFlag{Name: "agg", Value: "sum", Usage: "aggregate per bucket: sum, mean, min, max, last, count"},
