@@ -26,7 +26,7 @@ var crcTable = crc32.MakeTable(crc32.Castagnoli)
 //	magic "stS", version u8
 //	degree u8, harmonics u8, burn-in u32, period f64, lambda f64,
 //	seasonal lambda f64 (0: the same as lambda)
-//	n i64, steps i64, T f64, S f64, Syy f64
+//	n i64, steps i64, T f64, S f64, Syy f64, Te f64, T2 f64 (version 2)
 //	h [p]f64, F lower triangle row by row [p(p+1)/2]f64
 //	error sums: n, nAPE, nInt, in80, in95 i64; sumAbs, sumSq, sumErr, sumAPE,
 //	            dAbs, dSq, dWeight f64
@@ -36,12 +36,13 @@ var crcTable = crc32.MakeTable(crc32.Castagnoli)
 // decode by the same code that computed them on update, so a decoded state
 // answers bit for bit as the encoded one did.
 //
-// Version 1 is version 2 without the seasonal lambda; it still decodes (as a
-// state with one factor).
+// Version 1 is version 2 without the seasonal lambda, Te and T2; it still
+// decodes, as a state with one factor whose S counts as T - p unit terms
+// (Te = T2 = max(0, T - p), what the scale of its intervals was).
 func encodedLen(p int, version byte) int {
 	n := 4 + 2 + 4 + 8 + 8 + 2*8 + 3*8 + 8*p + 8*(p*(p+1)/2) + 5*8 + 7*8 + 4
 	if version >= 2 {
-		n += 8
+		n += 3 * 8
 	}
 	return n
 }
@@ -63,6 +64,8 @@ func (st *State) MarshalBinary() ([]byte, error) {
 	f(st.t)
 	f(st.s)
 	f(st.syy)
+	f(st.te)
+	f(st.t2)
 	for _, x := range st.h {
 		f(x)
 	}
@@ -129,6 +132,12 @@ func UnmarshalState(b []byte) (*State, error) {
 	}
 	st.n, st.steps = r.i64(), r.i64()
 	st.t, st.s, st.syy = r.f64(), r.f64(), r.f64()
+	if version >= 2 {
+		st.te, st.t2 = r.f64(), r.f64()
+	} else {
+		st.te = math.Max(0, st.t-float64(p))
+		st.t2 = st.te
+	}
 	for k := range st.h {
 		st.h[k] = r.f64()
 	}
@@ -185,7 +194,8 @@ func (st *State) plausible() error {
 	if st.n < 0 || st.steps < st.n {
 		return fmt.Errorf("counts %d observed of %d steps", st.n, st.steps)
 	}
-	if !finite(st.t) || st.t < 0 || !finite(st.s) || st.s < 0 || !finite(st.syy) || st.syy < 0 {
+	if !finite(st.t) || st.t < 0 || !finite(st.s) || st.s < 0 || !finite(st.syy) || st.syy < 0 ||
+		!finite(st.te) || st.te < 0 || !finite(st.t2) || st.t2 < 0 {
 		return errors.New("weights or sums are negative or not finite")
 	}
 	if !allFinite(st.h) || !allFinite(st.f) {

@@ -120,6 +120,11 @@ type State struct {
 
 	t   float64 // discounted count of observations, sum lambda^j
 	s   float64 // discounted residual sum of squares of the current fit
+	// te and t2 are the discounted count of the terms e^2 / (1 + q) in S
+	// and the discounted sum of their squared weights (lambda^2 per
+	// bucket): the scale of the intervals is S / te with the effective
+	// number te^2 / t2 of those terms as degrees of freedom (see Sigma).
+	te, t2 float64
 	syy float64 // discounted sum of Y^2, only to start S when F first becomes pd
 
 	n     int64 // observations folded in
@@ -127,6 +132,9 @@ type State struct {
 
 	errs errorSums
 	tq   quantileCache
+	// pointOnly: Observe leaves the one-step interval out of its Step (no
+	// SE, no coverage), for model choice, which scores point errors only.
+	pointOnly bool
 }
 
 // errorSums accumulates one-step prediction errors e = Y - forecast, scored only
@@ -511,14 +519,47 @@ func (st *State) Ready() bool {
 	return st.pd && st.n >= int64(st.p+st.spec.BurnIn) && st.rcond >= MinRCond
 }
 
-// DF is the residual degrees of freedom T - p; sigma and intervals are
-// defined only when it is positive.
-func (st *State) DF() float64 { return st.t - float64(st.p) }
-
-// Sigma is the residual standard deviation sqrt(S / (T - p)), NaN while
-// T <= p.
+// Sigma is the scale of the forecast errors, the square root of the
+// discounted mean square of the standardised one-step prediction errors
+//
+//	sigma^2 = S / Te,  S = sum_j lambda_V^j e_j^2 / (1 + q_j),  Te = sum_j lambda_V^j
+//
+// over the errors that entered S (Te counts them, with the state's weights;
+// a restart of S from its definition, before the first fit, counts as
+// T - p of them). One-step errors are predictions, not residuals of the
+// fit they came from, so no parameters are subtracted: unlike the
+// least-squares S / (T - p) (LSSigma), this stays defined and sound where
+// a short memory 1/(1 - lambda) comes close to p, the setting a lambda
+// search often lands on. NaN before the first error.
 func (st *State) Sigma() float64 {
-	df := st.DF()
+	if !(st.te > 0) {
+		return math.NaN()
+	}
+	return math.Sqrt(st.s / st.te)
+}
+
+// DF is the effective number of one-step errors behind Sigma,
+// Te^2 / sum_j lambda_V^2j (Kish's effective sample size of a weighted mean;
+// the degrees of freedom of Satterthwaite's approximation to a weighted sum
+// of chi-squares): about (1 + lambda_V) / (1 - lambda_V) in steady state.
+// Intervals use Student's t with these degrees of freedom; 0 before the
+// first error.
+func (st *State) DF() float64 {
+	if !(st.te > 0) || !(st.t2 > 0) {
+		return 0
+	}
+	return st.te * st.te / st.t2
+}
+
+// LSDF is the residual degrees of freedom of discounted least squares,
+// T - p.
+func (st *State) LSDF() float64 { return st.t - float64(st.p) }
+
+// LSSigma is the residual standard deviation of discounted least squares,
+// sqrt(S / (T - p)), NaN while T <= p. With one factor S is the discounted
+// residual sum of squares of the current fit.
+func (st *State) LSSigma() float64 {
+	df := st.LSDF()
 	if df <= 0 {
 		return math.NaN()
 	}
@@ -531,7 +572,8 @@ type Step struct {
 	Scored   bool    // the state was Ready before the observation
 	Forecast float64 // f(1)^T theta_old, the one-step forecast
 	Err      float64 // Y - Forecast
-	SE       float64 // standard error of the one-step forecast, NaN if T - p <= 0
+	SE       float64 // standard error of the one-step forecast, NaN before the first error
+	DF       float64 // degrees of freedom of its interval (State.DF before the observation)
 	// Lower95, Upper95 is the 95 % interval issued one step earlier. It is always
 	// filled when Y fell outside it; while T is still changing (the first
 	// few hundred steps) it may be NaN for a Y inside it: In80 and In95 are
@@ -553,26 +595,26 @@ func (st *State) Observe(y float64) (Step, error) {
 
 	// Score the one-step forecast of the old state.
 	ready := st.Ready()
-	// q = f(0)^T F_pred^-1 f(0); qLS = f(1)^T F^-1 f(1), the variance
-	// factor of least squares (lambda q with one factor).
-	var e, q, qLS float64
+	// q = f(0)^T F_pred^-1 f(0).
+	var e, q float64
 	comp := st.componentNow()
 	if st.pd {
 		step.Forecast = dot(st.f1, st.theta)
 		e = y - step.Forecast
 		if comp {
-			q, qLS = st.quadForm(st.g), st.quadForm(st.f1)
+			q = st.quadForm(st.g)
 		} else {
 			q = st.quadForm(st.f1) / lam
-			qLS = lam * q
 		}
 	}
 	if ready {
 		step.Scored, step.Err = true, e
 		step.SE, step.Lower95, step.Upper95 = math.NaN(), math.NaN(), math.NaN()
-		if df := st.DF(); df > 0 {
-			// Var(Y - forecast) = sigma^2 (1 + f(1)^T F^-1 f(1)).
-			step.SE = math.Sqrt(st.s/df) * math.Sqrt(1+qLS)
+		if df := st.DF(); df > 0 && !st.pointOnly {
+			step.DF = df
+			// Var(Y - forecast) = sigma^2 (1 + q), q = f(0)^T F_pred^-1 f(0)
+			// (the variance factor of the one-step prediction; see Forecast).
+			step.SE = st.Sigma() * math.Sqrt(1+q)
 			st.score(&step, e, df)
 		}
 	}
@@ -641,14 +683,18 @@ func (st *State) Observe(y float64) (Step, error) {
 	switch {
 	case st.pd && wasFitted:
 		st.s = s
+		st.te, st.t2 = lam*st.te+1, lam*lam*st.t2+1
 	case st.pd:
 		// F is positive definite but was not well conditioned one step
 		// earlier: start (or restart) S from its definition,
 		// S = syy - h^T F^-1 h, with h^T F^-1 h = ||C^-1 h||^2 (a sum of
-		// squares: at worst +Inf for huge values, never NaN).
+		// squares: at worst +Inf for huge values, never NaN). It holds
+		// T - p degrees of freedom, counted as that many unit terms.
 		st.s = math.Max(0, st.syy-st.quadForm(st.h))
+		st.te = math.Max(0, st.t-float64(st.p))
+		st.t2 = st.te
 	default:
-		st.s = 0
+		st.s, st.te, st.t2 = 0, 0, 0
 	}
 	st.n++
 	st.steps++
@@ -725,13 +771,15 @@ func (st *State) Skip(k int) error {
 	st.h, st.hnew = st.hnew, st.h
 	st.t *= w
 	st.s *= w
+	st.te *= w
+	st.t2 *= w * w
 	st.syy *= w
 	st.errs.decay(w)
 	st.steps += int64(k)
 	st.rcondAge = 0 // a gap can change the conditioning a lot: check it now
 	st.refactor()
 	if !st.pd {
-		st.s = 0
+		st.s, st.te, st.t2 = 0, 0, 0
 	}
 	return nil
 }
@@ -868,6 +916,7 @@ func (st *State) Clone() *State {
 	copy(c.theta, st.theta)
 	c.pd, c.rcond, c.rcondAge = st.pd, st.rcond, st.rcondAge
 	c.t, c.s, c.syy, c.n, c.steps = st.t, st.s, st.syy, st.n, st.steps
+	c.te, c.t2 = st.te, st.t2
 	c.errs, c.tq = st.errs, st.tq
 	return c
 }
