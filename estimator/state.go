@@ -118,14 +118,14 @@ type State struct {
 	// rcondEvery updates, not on every one: see refactor.
 	rcondAge int
 
-	t   float64 // discounted count of observations, sum lambda^j
-	s   float64 // discounted residual sum of squares of the current fit
+	t float64 // discounted count of observations, sum lambda^j
+	s float64 // discounted residual sum of squares of the current fit
 	// te and t2 are the discounted count of the terms e^2 / (1 + q) in S
 	// and the discounted sum of their squared weights (lambda^2 per
 	// bucket): the scale of the intervals is S / te with the effective
 	// number te^2 / t2 of those terms as degrees of freedom (see Sigma).
 	te, t2 float64
-	syy float64 // discounted sum of Y^2, only to start S when F first becomes pd
+	syy    float64 // discounted sum of Y^2, only to start S when F first becomes pd
 
 	n     int64 // observations folded in
 	steps int64 // buckets advanced, observed or skipped
