@@ -131,6 +131,20 @@ type AheadScore struct {
 // Origins are every bucket from the first Ready one; each forecast uses the
 // data up to its origin only.
 func Ahead(spec Spec, ys []float64, from, h int) ([]AheadScore, Score, error) {
+	return ahead(spec, ys, from, h, nil)
+}
+
+// AheadMapped is Ahead for a series fitted on a transformed scale (ys holds
+// the transformed values): back maps values, forecasts and bounds to the
+// data's scale, where the errors are measured (a monotone back, such as
+// exp for a log scale, keeps each bound's probability). Cumulative sums are
+// not scored (the bounds of a sum do not map back).
+func AheadMapped(spec Spec, ys []float64, from, h int, back func(float64) float64) ([]AheadScore, error) {
+	out, _, err := ahead(spec, ys, from, h, back)
+	return out, err
+}
+
+func ahead(spec Spec, ys []float64, from, h int, back func(float64) float64) ([]AheadScore, Score, error) {
 	if h < 1 || h > MaxHorizon {
 		return nil, Score{}, fmt.Errorf("estimator: horizon %d is out of range: use 1 to %d buckets", h, MaxHorizon)
 	}
@@ -167,9 +181,14 @@ func Ahead(spec Spec, ys []float64, from, h int) ([]AheadScore, Score, error) {
 				continue
 			}
 			k := l - 1
+			if back != nil {
+				y := back(ys[j])
+				sums[k].add(y-back(fc.Forecast[k]), back(fc.Lower80[k]), back(fc.Upper80[k]), back(fc.Lower95[k]), back(fc.Upper95[k]), y)
+				continue
+			}
 			sums[k].add(ys[j]-fc.Forecast[k], fc.Lower80[k], fc.Upper80[k], fc.Lower95[k], fc.Upper95[k], ys[j])
 		}
-		if complete && i+1 >= from {
+		if complete && i+1 >= from && back == nil {
 			k := h - 1
 			// The cumulative 80 % bound is not kept: the 95 % one only.
 			cum.add(total-fc.CumForecast[k], math.NaN(), math.NaN(), fc.CumLower95[k], fc.CumUpper95[k], total)

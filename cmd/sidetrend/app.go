@@ -42,6 +42,7 @@ func newApp() *cli.App {
 			statusCommand(),
 			plotCommand(),
 			forecastCommand(),
+			backtestCommand(),
 			demoCommand(),
 			{
 				Name:  "version",
