@@ -110,8 +110,9 @@ func TestNamesMigration(t *testing.T) {
 	}
 
 	p := testMigrationProvider(t, url)
-	if _, err := p.Down(ctx); err != nil {
-		t.Fatalf("down one step: %v", err)
+	// Down to just before 00008 (later migrations go down with it).
+	if _, err := p.DownTo(ctx, 7); err != nil {
+		t.Fatalf("down to version 7: %v", err)
 	}
 	back := strings.Join(spelled(), " ")
 	for _, n := range names {
