@@ -460,6 +460,7 @@ func (o ChooseOptions) withDefaults(series [][]float64) (ChooseOptions, error) {
 				}
 			}
 		}
+		// Warmup of the largest model tried (the period is the same).
 		o.Warmup = max(3*maxP+o.BurnIn, int(math.Ceil(2*o.Period)))
 		o.Warmup = min(o.Warmup, longest/3)
 	}
@@ -519,4 +520,28 @@ func ModelText(s Spec) string {
 		fmt.Fprintf(&b, ", seasonal lambda %.4g", c.SeasonLambda)
 	}
 	return b.String()
+}
+
+// Pooled scores each series with its own model (specs[i] for series[i])
+// from bucket from on, and pools the one-step errors: the score of the
+// models in use, on the buckets Choose scores with the same Warmup.
+func Pooled(specs []Spec, series [][]float64, from int) (Score, error) {
+	var sums scoreSums
+	for i, ys := range series {
+		if _, err := oneStep(specs[i], ys, from, &sums, true); err != nil {
+			return Score{}, err
+		}
+	}
+	return sums.score(), nil
+}
+
+// LambdaGrid is the grid of forgetting factors that o describes (evenly
+// spaced in log effective memory; zero fields take SearchLambda's
+// defaults).
+func LambdaGrid(o SearchOptions) ([]float64, error) {
+	o, err := o.withDefaults()
+	if err != nil {
+		return nil, err
+	}
+	return grid(o), nil
 }

@@ -180,3 +180,21 @@ func TestIntervalShortMemory(t *testing.T) {
 		t.Logf("%v: DF %.3g, 95 %% half-width %.3g, one-step RMSE %.3g, slope t %.3g", spec, fc.DF, hw, rmse, sl.T())
 	}
 }
+
+// TestBacktestIsOneStep: Backtest scores the buckets after Warmup, the
+// same errors OneStep and Choose score for that model.
+func TestBacktestIsOneStep(t *testing.T) {
+	ys := readSeries(t, "co2_gaps")
+	spec := Spec{Degree: 1, Period: 12, Harmonics: 3, Lambda: 0.9, SeasonLambda: 0.98}
+	es, err := Backtest(spec, ys)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sc, _, err := OneStep(spec, ys, Warmup(spec))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if es.N != sc.N || es.RMSE != sc.RMSE || es.MAE != sc.MAE || es.Cov95 != sc.Cov95 {
+		t.Errorf("Backtest %+v, OneStep %+v", es, sc)
+	}
+}
