@@ -292,7 +292,7 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 	all := make([][]float64, len(data))
 	specs := make([]estimator.Spec, len(data))
 	for i, d := range data {
-		all[i], specs[i] = d.Values, d.Spec
+		all[i], specs[i] = d.WithoutPartialStart(), d.Spec
 	}
 	grid := estimator.ChoiceGrid()
 	if opt != (estimator.SearchOptions{}) {
@@ -370,7 +370,8 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 				LambdaBefore: d.Spec.Lambda, SeasonLambdaBefore: d.Spec.Canonical().SeasonLambda, Best: -1}
 			o := estimator.ChooseOptions{Period: t.Spec.Period, BurnIn: t.Spec.BurnIn, Degrees: []int{t.Spec.Degree},
 				Harmonics: []int{t.Spec.Harmonics}, Lambdas: append(slices.Clone(grid), d.Spec.Lambda), SeasonLambdas: season}
-			ch, err := estimator.Choose([][]float64{d.Values}, o)
+			ys := all[i]
+			ch, err := estimator.Choose([][]float64{ys}, o)
 			switch {
 			case errors.Is(err, estimator.ErrNoErrors):
 				noErrors(&r)
@@ -378,7 +379,7 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 				perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
 				return
 			default:
-				before, err := estimator.Pooled([]estimator.Spec{d.Spec}, [][]float64{d.Values}, ch.Warmup)
+				before, err := estimator.Pooled([]estimator.Spec{d.Spec}, [][]float64{ys}, ch.Warmup)
 				if err != nil {
 					perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
 					return
