@@ -51,9 +51,9 @@ type ModelScore struct {
 	Harmonics    int     `json:"harmonics"`
 	Lambda       float64 `json:"lambda"`
 	SeasonLambda float64 `json:"season_lambda"` // 0: the same as Lambda
-	RMSE      float64 `json:"rmse"`
-	N         int64   `json:"n"`
-	Current   bool    `json:"current"`
+	RMSE         float64 `json:"rmse"`
+	N            int64   `json:"n"`
+	Current      bool    `json:"current"`
 }
 
 // TuneResult is the lambda search of one tracker (SeriesKey nil: all its
