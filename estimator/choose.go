@@ -24,16 +24,16 @@ type scoreSums struct {
 	sq, abs             float64
 }
 
-func (s *scoreSums) add(e, lo80, hi80, lo95, hi95, y float64) {
+func (s *scoreSums) add(e, lower80, upper80, lower95, upper95, y float64) {
 	s.n++
 	s.sq += e * e
 	s.abs += math.Abs(e)
-	if !math.IsNaN(lo95) && !math.IsNaN(hi95) {
+	if !math.IsNaN(lower95) && !math.IsNaN(upper95) {
 		s.nInt++
-		if y >= lo80 && y <= hi80 {
+		if y >= lower80 && y <= upper80 {
 			s.in80++
 		}
-		if y >= lo95 && y <= hi95 {
+		if y >= lower95 && y <= upper95 {
 			s.in95++
 		}
 	}

@@ -47,7 +47,10 @@ func forecastCommand() *cli.Command {
 			"naming the series. Times are RFC 3339 (2026-03-01T09:30:00+01:00), or '2006-01-02 15:04:05' or\n" +
 			"'2006-01-02', which are wall-clock time in --tz. Rows are bucketed by --bucket in --tz, each\n" +
 			"series is fitted by discounted least squares, and the forecasts for the next --horizon buckets\n" +
-			"are printed. An empty bucket between two observed ones counts as zero or as a gap (--empty).",
+			"are printed. An empty bucket between two observed ones counts as zero or as a gap (--empty).\n" +
+			"Model settings left out (--lambda, --season-lambda, and --harmonics with a --period) are chosen\n" +
+			"per series by one-step error; the degree is 1 unless given. A first or last bucket that the rows\n" +
+			"cover only in part is left out, with a note on stderr.",
 		Flags: append([]cli.Flag{
 			&cli.StringFlag{Name: "csv", Required: true, Usage: "CSV file with a header row; - reads standard input"},
 			&cli.StringFlag{Name: "time-col", Value: "time", Usage: "name of the time column"},
