@@ -23,6 +23,8 @@ var encodeSpecs = []Spec{
 	{Degree: 1, Period: 4, Harmonics: 2, Lambda: 0.9},
 	{Degree: 0, Period: 365.25 / 7, Harmonics: 3, Lambda: 0.99, BurnIn: 10},
 	{Degree: 2, Period: 12, Harmonics: 6, Lambda: 0.995},
+	{Degree: 1, Period: 12, Harmonics: 3, Lambda: 0.8, SeasonLambda: 0.99},
+	{Degree: 0, Period: 7, Harmonics: 2, Lambda: 0.99, SeasonLambda: 0.7, BurnIn: 2},
 }
 
 // randomState builds a state of a random spec from a random series with

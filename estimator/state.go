@@ -758,8 +758,17 @@ func (st *State) Skip(k int) error {
 	w := math.Pow(st.lambda, float64(k))
 	lk := st.tmpShift(k)
 	if st.componentNow() {
-		// F <- D^k/2 L^-k F L^-kT D^k/2, h <- F_pred (L^T)^k theta.
+		// F <- D^k/2 L^-k F L^-kT D^k/2, h <- F_pred (L^T)^k theta. The
+		// product F theta can overflow where F h could not (found by the
+		// fuzzer: values near 1e300): then nothing changes.
 		st.componentH(lk, k)
+		var nonFinite float64
+		for _, x := range st.hnew {
+			nonFinite += x - x
+		}
+		if nonFinite != 0 {
+			return fmt.Errorf("estimator: cannot skip %d buckets: the shifted state overflows (values too large)", k)
+		}
 		st.componentF(lk, k)
 	} else {
 		lk.mulVec(st.h, st.hnew)
