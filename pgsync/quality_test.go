@@ -86,3 +86,32 @@ func TestMeterTuningKeepsIntervals(t *testing.T) {
 	t.Logf("lambdas chosen: tracker %v (seasonal %v), series e.g. %v; widest one-step half-width %.2f RMSE",
 		res[0].Lambda, res[0].SeasonLambda, res[1].Lambda, widest)
 }
+
+// TestTuneSQLShowsModels: sidetrend.tune() shows, after its first five
+// columns, the seasonal factor, both models as text, the errors scored and
+// the bound notes, from the same stored result the CLI prints; a model's
+// RMSE appears once.
+func TestTuneSQLShowsModels(t *testing.T) {
+	t.Parallel()
+	pool := tunedSales(t, 16)
+	ctx := context.Background()
+	res, err := Tune(ctx, pool, TuneOptions{Tracker: "sales"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := res[0]
+	var before, after float64
+	var n int64
+	var modelBefore, model string
+	if err := pool.QueryRow(ctx, `SELECT rmse_before, rmse_after, model_before, model, n_errors FROM sidetrend.tune('sales')`).
+		Scan(&before, &after, &modelBefore, &model, &n); err != nil {
+		t.Fatal(err)
+	}
+	if before != r.RMSEBefore || after != r.RMSEAfter || n != r.N || model != r.Model || modelBefore != r.ModelBefore ||
+		modelBefore != "degree 1, 2 harmonics of 7, lambda 0.95" {
+		t.Errorf("tune(): %v %v %q %q %d; Tune: %+v", before, after, modelBefore, model, n, r)
+	}
+	if model == modelBefore && before != after {
+		t.Errorf("the same model %q with two RMSEs %v and %v", model, before, after)
+	}
+}

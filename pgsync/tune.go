@@ -81,6 +81,9 @@ type TuneResult struct {
 	// AtBound names each chosen setting that sits on the edge of the
 	// range searched (estimator.Choice.AtBound).
 	AtBound []string
+	// ModelBefore and Model describe the model in use and the chosen one
+	// (estimator.ModelText); empty when nothing was scored.
+	ModelBefore, Model string
 
 	// Tracker-wide results only: the model comparison, the best factors of
 	// every degree (0 to 2) and number of harmonics (0 to 6 with a
@@ -343,7 +346,7 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 		if err != nil {
 			return nil, fmt.Errorf("tune tracker %q: %w", t.Name, err)
 		}
-		fillChoice(&tr, ch, before)
+		fillChoice(&tr, ch, before, t.Spec)
 		for _, c := range all3.Tried {
 			tr.Models = append(tr.Models, ModelScore{Degree: c.Spec.Degree, Period: c.Spec.Period, Harmonics: c.Spec.Harmonics,
 				Lambda: c.Spec.Lambda, SeasonLambda: c.Spec.SeasonLambda, RMSE: c.Score.RMSE, N: c.Score.N,
@@ -384,7 +387,7 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 					perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
 					return
 				}
-				fillChoice(&r, ch, before)
+				fillChoice(&r, ch, before, d.Spec)
 			}
 			out.series[i] = r
 			if prog != nil {
@@ -404,9 +407,17 @@ func noErrors(r *TuneResult) {
 	r.Note = "too short: no one-step error after the warm-up, the parameters and the burn-in"
 }
 
+func optText(s string) *string {
+	if s == "" {
+		return nil
+	}
+	return &s
+}
+
 // fillChoice records a choice and the score of the model in use, both
 // over the same buckets.
-func fillChoice(r *TuneResult, ch estimator.Choice, before estimator.Score) {
+func fillChoice(r *TuneResult, ch estimator.Choice, before estimator.Score, inUse estimator.Spec) {
+	r.Model, r.ModelBefore = estimator.ModelText(ch.Spec), estimator.ModelText(inUse)
 	r.Lambda, r.SeasonLambda, r.N, r.Warmup, r.AtBound = ch.Spec.Lambda, ch.Spec.SeasonLambda, ch.Score.N, ch.Warmup, ch.AtBound
 	r.MemoryBuckets = 1 / (1 - ch.Spec.Lambda)
 	r.RMSEAfter, r.RMSEBefore = ch.Score.RMSE, before.RMSE
@@ -463,9 +474,9 @@ const insertTuningSQL = `
 INSERT INTO sidetrend.tuning (tracker_id, scope, series_key, lambda_before, lambda, memory_buckets,
     rmse_before, rmse_after, n_errors, series_count, points, curve_lambda, curve_rmse,
     degree, harmonics, models, best_degree, best_harmonics, note, applied_at,
-    season_lambda_before, season_lambda, at_bound)
+    season_lambda_before, season_lambda, at_bound, model_before, model)
 VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19,
-        CASE WHEN $20::bool THEN now() END, $21, $22, $23)`
+        CASE WHEN $20::bool THEN now() END, $21, $22, $23, $24, $25)`
 
 // What storeTuning applies.
 const (
@@ -592,7 +603,7 @@ func tuningArgs(t *Tracker, r *TuneResult, scope string, applied bool) []any {
 	return []any{int32(t.ID), scope, key, nullable(r.LambdaBefore), nullable(r.Lambda), nullable(r.MemoryBuckets),
 		nullable(r.RMSEBefore), nullable(r.RMSEAfter), r.N, int32(r.Series), r.Points, curveL, curveR,
 		int32(t.Spec.Degree), int32(t.Spec.Harmonics), models, bestDegree, bestHarmonics, note, applied,
-		nz(r.SeasonLambdaBefore), nz(r.SeasonLambda), atBound}
+		nz(r.SeasonLambdaBefore), nz(r.SeasonLambda), atBound, optText(r.ModelBefore), optText(r.Model)}
 }
 
 func sortedIDs(ts map[int]*Tracker) []int {
