@@ -23,8 +23,8 @@ type modelFlags struct {
 	transform            string // "" or "log"
 }
 
-// modelCLIFlags are the flags modelFlagsFrom reads; degreeDefault is the
-// degree when --degree is left out (nil: chosen).
+// modelCLIFlags are the model flags forecast and backtest share (each
+// declares --degree itself, with its own default).
 func modelCLIFlags() []cli.Flag {
 	return []cli.Flag{
 		&cli.Float64Flag{Name: "period", Usage: "seasonal period in buckets (7 for weekly in days); 0 for none"},
