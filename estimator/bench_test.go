@@ -10,10 +10,12 @@ import (
 // Run with: go test -run '^$' -bench . -benchmem -count 5 ./estimator/
 
 // benchSpecs are the two model sizes of the targets: a local linear trend
-// (p = 2) and the same with two weekly harmonics (p = 6).
+// (p = 2) and the same with two weekly harmonics (p = 6), once with one
+// factor and once with a seasonal factor of its own.
 var benchSpecs = []Spec{
 	{Degree: 1, Lambda: 0.97},
 	{Degree: 1, Period: 7, Harmonics: 2, Lambda: 0.97},
+	{Degree: 1, Period: 7, Harmonics: 2, Lambda: 0.97, SeasonLambda: 0.995},
 }
 
 // benchSeries is a daily series with a weekly cycle around 100 (an
@@ -45,7 +47,7 @@ func warmState(b *testing.B, spec Spec) (*State, []float64) {
 // 200 ns at p = 2, 2 us at p = 6, no allocation.
 func BenchmarkObserve(b *testing.B) {
 	for _, spec := range benchSpecs {
-		b.Run(fmt.Sprintf("p=%d", spec.Params()), func(b *testing.B) {
+		b.Run(benchName(spec), func(b *testing.B) {
 			st, ys := warmState(b, spec)
 			b.ReportAllocs()
 			i := 0
@@ -64,7 +66,7 @@ func BenchmarkObserve(b *testing.B) {
 func BenchmarkForecast(b *testing.B) {
 	for _, spec := range benchSpecs {
 		for _, h := range []int{12} {
-			b.Run(fmt.Sprintf("p=%d/H=%d", spec.Params(), h), func(b *testing.B) {
+			b.Run(fmt.Sprintf("%s/H=%d", benchName(spec), h), func(b *testing.B) {
 				st, _ := warmState(b, spec)
 				b.ReportAllocs()
 				for b.Loop() {
@@ -100,7 +102,7 @@ func BenchmarkRefit(b *testing.B) {
 // (see rcondSafe).
 func BenchmarkRCond(b *testing.B) {
 	for _, spec := range benchSpecs {
-		b.Run(fmt.Sprintf("p=%d", spec.Params()), func(b *testing.B) {
+		b.Run(benchName(spec), func(b *testing.B) {
 			st, _ := warmState(b, spec)
 			b.ReportAllocs()
 			var sum float64
@@ -112,4 +114,12 @@ func BenchmarkRCond(b *testing.B) {
 			}
 		})
 	}
+}
+
+// benchName is p=N, with /components when the seasonal factor differs.
+func benchName(spec Spec) string {
+	if spec.Canonical().SeasonLambda != 0 {
+		return fmt.Sprintf("p=%d/components", spec.Params())
+	}
+	return fmt.Sprintf("p=%d", spec.Params())
 }

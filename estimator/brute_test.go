@@ -88,15 +88,17 @@ func (bf *bruteFit) sigma() float64 {
 }
 
 // forecast returns forecast_l, SE_l, the cumulative sums and their SE for
-// l = 1..h from the formulas in forecast.go's doc comments:
+// l = 1..h from the formulas in forecast.go's doc comments with one factor
+// lambda, given sigma:
 //
-//	SE_l    = sigma sqrt(1 + f(l)^T F^-1 f(l))
-//	CumSE_l = sigma sqrt(l + c_l^T F^-1 c_l),  c_l = sum_{k<=l} f(k)
-func (bf *bruteFit) forecast(h int) (forecast, se, cum, cumSE []float64) {
+//	SE_l    = sigma sqrt(1 + f(l)^T F^-1 f(l) + (1/lambda - 1) sum_{m<=l} f(m)^T F^-1 f(m))
+//	CumSE_l = sigma sqrt(l + c_l^T F^-1 c_l + (1/lambda - 1) sum_{k<=l} c_k^T F^-1 c_k),
+//	c_l = sum_{k<=l} f(k)
+func (bf *bruteFit) forecast(h int, sigma float64) (forecast, se, cum, cumSE []float64) {
 	f := make([]float64, bf.p)
 	c := make([]float64, bf.p)
-	sigma := bf.sigma()
-	var sum float64
+	w := 1/bf.spec.Lambda - 1
+	var sum, evol, evolCum float64
 	for l := 1; l <= h; l++ {
 		bf.spec.Regressors(float64(l), f)
 		y := dot(f, bf.theta)
@@ -104,10 +106,13 @@ func (bf *bruteFit) forecast(h int) (forecast, se, cum, cumSE []float64) {
 		for i := range c {
 			c[i] += f[i]
 		}
+		qf, qc := bf.quad(f), bf.quad(c)
+		evol += w * qf
+		evolCum += w * qc
 		forecast = append(forecast, y)
-		se = append(se, sigma*math.Sqrt(1+bf.quad(f)))
+		se = append(se, sigma*math.Sqrt(1+qf+evol))
 		cum = append(cum, sum)
-		cumSE = append(cumSE, sigma*math.Sqrt(float64(l)+bf.quad(c)))
+		cumSE = append(cumSE, sigma*math.Sqrt(float64(l)+qc+evolCum))
 	}
 	return
 }
@@ -256,6 +261,7 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 			}
 		} else {
 			wasReady := st.Ready()
+			sigPrev := st.Sigma()
 			step, err := st.Observe(y)
 			if err != nil {
 				t.Fatal(err)
@@ -266,10 +272,10 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 			if step.Scored && prev != nil && prev.ok {
 				// The one-step forecast issued at bucket n-1 for bucket n,
 				// held to the tolerances of that bucket.
-				yh, se, _, _ := prev.forecast(1)
+				yh, se, _, _ := prev.forecast(1, sigPrev)
 				near("step forecast", n, step.Forecast, yh[0], prevRelFit, rel*scale)
 				near("step err", n, step.Err, y-yh[0], prevRelFit, rel*scale)
-				if prev.t > float64(p) {
+				if !math.IsNaN(sigPrev) {
 					near("step SE", n, step.SE, se[0], prevRelS, rel*scale)
 				}
 				steps++
@@ -330,15 +336,20 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 		}
 		near("T", n, st.Weight(), bf.t, rel, 0)
 		near("S", n, st.RSS(), bf.s, relS, abs)
+		if st.LSDF() > 0 {
+			near("least-squares sigma", n, st.LSSigma(), bf.sigma(), relS, abs)
+		}
 		if st.DF() <= 0 {
 			continue
 		}
-		near("sigma", n, st.Sigma(), bf.sigma(), relS, abs)
 		fc, err := st.Forecast(h)
 		if err != nil {
 			t.Fatal(err)
 		}
-		yh, se, cum, cumSE := bf.forecast(h)
+		// The scale sigma (the discounted mean square of standardised
+		// one-step errors, a sum the state keeps) is the state's; the
+		// variance factors come from the brute-force F.
+		yh, se, cum, cumSE := bf.forecast(h, st.Sigma())
 		for l := 0; l < h; l++ {
 			// Cumulative values sum l+1 forecasts: the floor grows with l.
 			cabs := abs * float64(l+1)
@@ -357,7 +368,7 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 			near(fmt.Sprintf("CumUpper95-CumLower95[%d]", l+1), n, fc.CumUpper95[l]-fc.CumLower95[l], 2*fc.T95*cumSE[l], relS, cabs)
 		}
 		if math.IsNaN(fc.T95) && fc.DF >= 0.0065 {
-			t.Errorf("N=%d no interval at T - p = %v", n, fc.DF)
+			t.Errorf("N=%d no interval at DF = %v", n, fc.DF)
 		}
 		sl, err := st.Slope()
 		if err != nil {
@@ -368,7 +379,7 @@ func checkBrute(t *testing.T, spec Spec, ys []float64, h int, rel float64, loose
 			e2 := make([]float64, p)
 			e2[1] = 1
 			near("slope", n, sl.Slope, bf.theta[1], relFit, abs/colScale(spec, 1))
-			near("slope SE", n, sl.SE, bf.sigma()*math.Sqrt(bf.quad(e2)), relS, abs/colScale(spec, 1))
+			near("slope SE", n, sl.SE, st.Sigma()*math.Sqrt(bf.quad(e2)), relS, abs/colScale(spec, 1))
 		}
 	}
 	got := st.Errors()

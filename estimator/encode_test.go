@@ -3,6 +3,7 @@ package estimator
 import (
 	"bytes"
 	"encoding/binary"
+	"encoding/hex"
 	"errors"
 	"hash/crc32"
 	"math"
@@ -22,6 +23,8 @@ var encodeSpecs = []Spec{
 	{Degree: 1, Period: 4, Harmonics: 2, Lambda: 0.9},
 	{Degree: 0, Period: 365.25 / 7, Harmonics: 3, Lambda: 0.99, BurnIn: 10},
 	{Degree: 2, Period: 12, Harmonics: 6, Lambda: 0.995},
+	{Degree: 1, Period: 12, Harmonics: 3, Lambda: 0.8, SeasonLambda: 0.99},
+	{Degree: 0, Period: 7, Harmonics: 2, Lambda: 0.99, SeasonLambda: 0.7, BurnIn: 2},
 }
 
 // randomState builds a state of a random spec from a random series with
@@ -195,7 +198,7 @@ func TestDecodeErrors(t *testing.T) {
 		}
 	})
 	t.Run("wrong version", func(t *testing.T) {
-		for _, v := range []byte{0, 2, 255} {
+		for _, v := range []byte{0, 3, 255} {
 			b := append([]byte(nil), good...)
 			b[3] = v
 			_, err := UnmarshalState(withCRC(b))
@@ -206,9 +209,9 @@ func TestDecodeErrors(t *testing.T) {
 	})
 	t.Run("impossible values", func(t *testing.T) {
 		// Offsets from the layout comment in encode.go: magic+version 4,
-		// degree 1, harmonics 1, burn-in 4, period 8, lambda 8, n 8, steps 8,
-		// then T at 42.
-		const offT = 4 + 1 + 1 + 4 + 8 + 8 + 8 + 8
+		// degree 1, harmonics 1, burn-in 4, period 8, lambda 8, seasonal
+		// lambda 8, n 8, steps 8, then T at 50.
+		const offT = 4 + 1 + 1 + 4 + 8 + 8 + 8 + 8 + 8
 		for _, bad := range []float64{-1, math.NaN(), math.Inf(1)} {
 			b := append([]byte(nil), good...)
 			binary.LittleEndian.PutUint64(b[offT:], math.Float64bits(bad))
@@ -251,4 +254,54 @@ func sameStep(a, b Step) bool {
 	opt := func(x, y float64) bool { return math.IsNaN(x) || math.IsNaN(y) || eq(x, y) }
 	return a.Scored == b.Scored && eq(a.Forecast, b.Forecast) && eq(a.Err, b.Err) && eq(a.SE, b.SE) &&
 		a.In80 == b.In80 && a.In95 == b.In95 && opt(a.Lower95, b.Lower95) && opt(a.Upper95, b.Upper95)
+}
+
+// TestDecodeVersion1 decodes a state written by the encoder before seasonal
+// lambdas existed (encoding version 1, commit 7d2191c): the program below,
+// run against that commit's estimator, printed the hex and the numbers.
+//
+//	st, _ := NewState(Spec{Degree: 1, Period: 12, Harmonics: 2, Lambda: 0.95, BurnIn: 2})
+//	for i := 0; i < 40; i++ {
+//		if i == 20 { st.Skip(3) }
+//		st.Observe(float64(i) + 3*float64(i%12) + float64(i*i%7)/10)
+//	}
+//	b, _ := st.MarshalBinary(); fc, _ := st.Forecast(3)
+//	fmt.Printf("%.17g %.17g %.17g", fc.Forecast, fc.SE, st.Sigma())
+func TestDecodeVersion1(t *testing.T) {
+	const v1 = "737453010102020000000000000000002840666666666666ee3f28000000000000002b00000000000000428f50eb14c63040f299c6478e94904038234397863ce0404c8d5734bf148640066113c0be69bdc07835dd5cccd757c0b4c5b9cfee3d3cc025548efa58650fc02d48d579ed155340428f50eb14c63040ec8c8dcfe0bd6bc05cc024fe8ec5b340691285b77ef207c0a6ef85410b4f3d40901e938d57fa1e4001f9d034e979e53f8219539e312416409e5c1c723777d7bf3e8fd70ffe0e2240a05c1c723777e7bf9b59ac1099b210c0d3cd199b2d24be3f9f2de7f549aef9bf4a8e01ec40332040bbff6f48928ef43f28e9b5ed0b352fc030f72279b336f63f2ebf6d8163b5e13fedfe52055f41c2bf3d909feae85821402000000000000000200000000000000020000000000000001c000000000000001e0000000000000046138091ae906f4018a543e0bb92b040b9abfb5cfbad52c0a49caf4313552140dbb63ed39a23604046bd05f1f4ee9d409fecf09fbe4f2f407b019714"
+	b, err := hex.DecodeString(v1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec := Spec{Degree: 1, Period: 12, Harmonics: 2, Lambda: 0.95, BurnIn: 2}
+	st, err := DecodeFor(b, spec)
+	if err != nil {
+		t.Fatalf("version 1 state: %v", err)
+	}
+	fc, err := st.Forecast(3)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// The values the version-1 build printed for this state.
+	wantF := []float64{57.223440633995807, 60.638109252220495, 61.714312773177184}
+	for i, w := range wantF {
+		if fc.Forecast[i] != w {
+			t.Errorf("forecast %d = %.17g, want %.17g", i+1, fc.Forecast[i], w)
+		}
+	}
+	if got := st.Sigma(); got != 9.9243608116996658 {
+		t.Errorf("sigma = %.17g, want 9.9243608116996658", got)
+	}
+	// Re-encoded, it is a version 2 state that decodes to the same.
+	b2 := mustMarshal(t, st)
+	if b2[3] != encodingVersion {
+		t.Fatalf("re-encoded as version %d", b2[3])
+	}
+	st2, err := DecodeFor(b2, spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if st2.Sigma() != st.Sigma() {
+		t.Fatalf("re-encoded sigma %v, want %v", st2.Sigma(), st.Sigma())
+	}
 }

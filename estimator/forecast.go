@@ -9,16 +9,17 @@ import (
 const MaxHorizon = 100000
 
 // Forecast holds the forecasts for l = 1..H buckets ahead; index l-1 in
-// every slice. Interval bounds are NaN while T - p <= 0 (no residual degrees
-// of freedom yet) or is too small for a finite t quantile (below about 0.0065).
+// every slice. Interval bounds are NaN before the first one-step error
+// (DF 0) or while DF is too small for a finite t quantile (below about
+// 0.0065).
 type Forecast struct {
 	Forecast         []float64 // f(l)^T theta_N
-	SE               []float64 // sigma sqrt(1 + f(l)^T F^-1 f(l))
-	Lower80, Upper80 []float64 // forecast -+ t_{0.10}(T - p) SE
-	Lower95, Upper95 []float64 // forecast -+ t_{0.025}(T - p) SE
+	SE               []float64 // sigma sqrt(V_l), see State.Forecast
+	Lower80, Upper80 []float64 // forecast -+ t_{0.10}(DF) SE
+	Lower95, Upper95 []float64 // forecast -+ t_{0.025}(DF) SE
 
 	// Cumulative forecast of the next l buckets, sum_{k<=l} forecast_k, with
-	// standard error sigma sqrt(l + c_l^T F^-1 c_l), c_l = sum_{k<=l} f(k).
+	// standard error sigma sqrt(Vc_l), see State.Forecast.
 	CumForecast, CumSE     []float64
 	CumLower95, CumUpper95 []float64
 	Sigma, DF, T80, T95    float64
@@ -27,10 +28,26 @@ type Forecast struct {
 // Forecast returns forecasts and intervals for l = 1..h:
 //
 //	forecast_{N+l|N} = f(l)^T theta_N
-//	forecast -+ t_{alpha/2}(T - p) sigma sqrt(1 + f(l)^T F^-1 f(l))
+//	forecast -+ t_{alpha/2}(DF) sigma sqrt(V_l)
+//	V_l  = 1 + f(l)^T F^-1 f(l) + sum_{m=1..l} w(f(m))
+//	Vc_l = l + c_l^T F^-1 c_l   + sum_{k=1..l} w(c_k),  c_k = sum_{m<=k} f(m)
+//	w(x) = max(0, x^T D^-1/2 F^-1 D^-1/2 x - x^T F^-1 x)
 //
-// the prediction interval of discounted least squares under independent
-// errors of constant variance, with sigma^2 = S / (T - p).
+// sigma and DF are those of Sigma and DF (the discounted mean square of
+// the standardised one-step errors). V_l is the l-step variance factor of
+// the discount model written as a dynamic linear model: the state evolves
+// with the one-step evolution variance W = D^-1/2 P D^-1/2 - P, P = L^T
+// F^-1 L, that the discount implies at the forecast origin, held fixed over
+// the horizon (West and Harrison, ch. 6: a discount defines W_t+1, and
+// forecasts further ahead keep it; from memory). Each term adds the
+// evolution noise entering at one step to the forecast it reaches; the
+// cumulative factor sums the same noise over every later bucket it moves.
+// With one factor w(x) = (1/lambda - 1) x^T F^-1 x; with two factors a term
+// can come out negative, and is then left out. V_1 = 1 + q, the factor of
+// the one-step errors that estimate sigma, so the one-step interval is
+// their discounted root mean square times 1 + q now over its average: the
+// interval is sound for every lambda, however short the memory.
+// Least squares' own factor 1 + f(l)^T F^-1 f(l) is the first two terms.
 func (st *State) Forecast(h int) (*Forecast, error) {
 	if h < 1 || h > MaxHorizon {
 		return nil, fmt.Errorf("estimator: horizon %d is out of range: use 1 to %d buckets", h, MaxHorizon)
@@ -68,7 +85,18 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 	}
 	fl := make([]float64, p)
 	cum := make([]float64, p)
-	var cumY float64
+	scaled := make([]float64, p)
+	// w(x) given q = x^T F^-1 x (see above).
+	evolution := func(x []float64, q float64) float64 {
+		if !st.comp {
+			return (1/st.spec.Lambda - 1) * q
+		}
+		for i := range scaled {
+			scaled[i] = x[i] / st.dhalf[i]
+		}
+		return math.Max(0, st.quadForm(scaled)-q)
+	}
+	var cumY, evol, evolCum float64
 	for l := 1; l <= h; l++ {
 		st.spec.Regressors(float64(l), fl)
 		y := dot(fl, st.theta)
@@ -78,8 +106,11 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 		cumY += y
 		i := l - 1
 		fc.Forecast[i], fc.CumForecast[i] = y, cumY
-		fc.SE[i] = fc.Sigma * math.Sqrt(1+st.quadForm(fl))
-		fc.CumSE[i] = fc.Sigma * math.Sqrt(float64(l)+st.quadForm(cum))
+		ql, qc := st.quadForm(fl), st.quadForm(cum)
+		evol += evolution(fl, ql)
+		evolCum += evolution(cum, qc)
+		fc.SE[i] = fc.Sigma * math.Sqrt(1+ql+evol)
+		fc.CumSE[i] = fc.Sigma * math.Sqrt(float64(l)+qc+evolCum)
 		fc.Lower80[i], fc.Upper80[i] = y-fc.T80*fc.SE[i], y+fc.T80*fc.SE[i]
 		fc.Lower95[i], fc.Upper95[i] = y-fc.T95*fc.SE[i], y+fc.T95*fc.SE[i]
 		fc.CumLower95[i], fc.CumUpper95[i] = cumY-fc.T95*fc.CumSE[i], cumY+fc.T95*fc.CumSE[i]
@@ -94,10 +125,11 @@ type Slope struct {
 	// Slope is d/dj of the trend part at j = 0, theta_2, in value units per
 	// bucket; 0 for a degree-0 model.
 	Slope float64
-	// SE is the standard error sigma sqrt([F^-1]_22); NaN while T - p <= 0
-	// or for a degree-0 model.
+	// SE is the standard error sigma sqrt([F^-1]_22) (sigma of
+	// State.Sigma); NaN before the first one-step error or for a degree-0
+	// model.
 	SE float64
-	// DF is the residual degrees of freedom T - p.
+	// DF is the degrees of freedom of sigma (State.DF).
 	DF float64
 }
 

@@ -152,9 +152,22 @@ func TestReferenceR(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			sl, err := st.Slope()
-			if err != nil {
-				t.Fatal(err)
+			// R's sigma, se, cum_se and slope_se are those of least
+			// squares: the estimator's LSSigma with the factors
+			// 1 + f(l)^T F^-1 f(l), l + c_l^T F^-1 c_l and [F^-1]_22.
+			ls := st.LSSigma()
+			fl, cl, e2 := make([]float64, st.p), make([]float64, st.p), make([]float64, st.p)
+			lsSE, lsCumSE := make([]float64, h), make([]float64, h)
+			for l := 1; l <= h; l++ {
+				c.spec.Regressors(float64(l), fl)
+				for i := range cl {
+					cl[i] += fl[i]
+				}
+				lsSE[l-1] = ls * math.Sqrt(1+st.quadForm(fl))
+				lsCumSE[l-1] = ls * math.Sqrt(float64(l)+st.quadForm(cl))
+			}
+			if c.spec.Degree >= 1 {
+				e2[1] = 1
 			}
 			for k, want := range c.want {
 				var got, floor float64
@@ -164,19 +177,19 @@ func TestReferenceR(t *testing.T) {
 				case "T":
 					got = st.Weight()
 				case "sigma":
-					got, floor = st.Sigma(), abs
+					got, floor = ls, abs
 				case "theta":
 					got, floor = theta[k.index-1], abs/colScale(c.spec, k.index-1)
 				case "slope_se":
-					got, floor = sl.SE, abs/colScale(c.spec, 1)
+					got, floor = ls*math.Sqrt(st.quadForm(e2)), abs/colScale(c.spec, 1)
 				case "forecast":
 					got, floor = fc.Forecast[k.index-1], abs
 				case "se":
-					got, floor = fc.SE[k.index-1], abs
+					got, floor = lsSE[k.index-1], abs
 				case "cum":
 					got, floor = fc.CumForecast[k.index-1], abs*float64(k.index)
 				case "cum_se":
-					got, floor = fc.CumSE[k.index-1], abs*float64(k.index)
+					got, floor = lsCumSE[k.index-1], abs*float64(k.index)
 				default:
 					t.Fatalf("unknown quantity %q in the reference file", k.quantity)
 				}

@@ -192,12 +192,31 @@ func SearchLambda(spec Spec, series [][]float64, opt SearchOptions) (SearchResul
 	return res, nil
 }
 
-// Backtest runs spec over ys (NaN marks a gap) and returns the one-step error
-// statistics after burn-in.
+// Backtest runs spec over ys (NaN marks a gap) and returns the statistics
+// of the one-step errors after the warm-up, the buckets Choose leaves
+// unscored for this model (Warmup): so that a model's backtest error is the
+// error model choice compares, wherever it is read (the live endpoint's
+// backtest table, the CLI, tuning).
 func Backtest(spec Spec, ys []float64) (ErrorStats, error) {
-	st, err := Fit(spec, ys)
+	st, err := NewState(spec)
 	if err != nil {
 		return ErrorStats{}, err
 	}
+	w := min(Warmup(spec), len(ys)/3)
+	if err := st.Run(ys[:w]); err != nil {
+		return ErrorStats{}, err
+	}
+	st.errs = errorSums{}
+	if err := st.Run(ys[w:]); err != nil {
+		return ErrorStats{}, err
+	}
 	return st.Errors(), nil
+}
+
+// Warmup is the number of leading buckets whose one-step errors model
+// choice leaves unscored for a model of this structure: three times its
+// parameters plus the burn-in, and at least two periods (ChooseOptions
+// caps it at a third of the longest series).
+func Warmup(spec Spec) int {
+	return max(3*spec.Params()+spec.BurnIn, int(math.Ceil(2*spec.Period)))
 }

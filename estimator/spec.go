@@ -38,7 +38,13 @@ type Spec struct {
 	// Harmonics is the number of harmonic pairs, 1..6, when Period > 0.
 	Harmonics int
 	// Lambda is the forgetting factor in (0, 1]; 1 is ordinary least squares.
+	// With SeasonLambda set it is the factor of the trend block only.
 	Lambda float64
+	// SeasonLambda is the forgetting factor of the seasonal block (the
+	// harmonic pairs) in (0, 1]; 0 means the same as Lambda. With two
+	// different factors the state is updated by component discounting (see
+	// State).
+	SeasonLambda float64
 	// BurnIn is the number of observed points, beyond the number of
 	// parameters, that must be in before the state reports Ready.
 	BurnIn int
@@ -53,6 +59,9 @@ func (s Spec) Validate() error {
 	if math.IsNaN(s.Lambda) || s.Lambda <= 0 || s.Lambda > 1 {
 		return fmt.Errorf("lambda %v is outside (0, 1]: use a forgetting factor such as 0.95 (1 means no forgetting)", s.Lambda)
 	}
+	if math.IsNaN(s.SeasonLambda) || s.SeasonLambda < 0 || s.SeasonLambda > 1 {
+		return fmt.Errorf("seasonal lambda %v is outside (0, 1]: use a forgetting factor such as 0.99, or 0 for the same as lambda", s.SeasonLambda)
+	}
 	if s.BurnIn < 0 {
 		return fmt.Errorf("burn-in %d is negative: use 0 or more points", s.BurnIn)
 	}
@@ -62,6 +71,9 @@ func (s Spec) Validate() error {
 	if s.Period == 0 {
 		if s.Harmonics != 0 {
 			return fmt.Errorf("%d harmonics need a period: give a seasonal period in buckets, or use 0 harmonics", s.Harmonics)
+		}
+		if s.SeasonLambda != 0 && s.SeasonLambda != s.Lambda {
+			return fmt.Errorf("seasonal lambda %v needs a period: give a seasonal period in buckets, or leave the seasonal lambda out", s.SeasonLambda)
 		}
 		return nil
 	}
@@ -76,6 +88,37 @@ func (s Spec) Validate() error {
 			s.Harmonics, s.Period, int(math.Floor(s.Period/2)))
 	}
 	return nil
+}
+
+// SeasonFactor is the forgetting factor of the seasonal block: SeasonLambda,
+// or Lambda when it is 0.
+func (s Spec) SeasonFactor() float64 {
+	if s.SeasonLambda == 0 {
+		return s.Lambda
+	}
+	return s.SeasonLambda
+}
+
+// Canonical returns s with SeasonLambda 0 when it adds nothing (no seasonal
+// terms, or equal to Lambda), so that two specs of the same model compare
+// equal.
+func (s Spec) Canonical() Spec {
+	if s.Harmonics == 0 || s.SeasonLambda == s.Lambda {
+		s.SeasonLambda = 0
+	}
+	return s
+}
+
+// componentDiscount reports whether the trend and seasonal blocks forget at
+// different rates.
+func (s Spec) componentDiscount() bool {
+	return s.Harmonics > 0 && s.SeasonFactor() != s.Lambda
+}
+
+// VarianceFactor is the factor that discounts the residual scale (T and S):
+// the larger of the two block factors (see State).
+func (s Spec) VarianceFactor() float64 {
+	return math.Max(s.Lambda, s.SeasonFactor())
 }
 
 // Params is the number of regressors p of a valid spec.

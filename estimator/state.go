@@ -40,6 +40,43 @@ const MinRCond = 1e-10
 // float64, bit for bit, as the dense product gives (each sum starts from
 // +0, and adding +-0 to a sum that is not -0 changes nothing).
 //
+// Component discounting. With a trend factor lambda_T and a seasonal factor
+// lambda_S, D = diag(d_i) holds each regressor's block factor and the shift
+// becomes
+//
+//	F_pred = D^1/2 L^-1 F L^-T D^1/2
+//	h_pred = F_pred L^T theta_old = D^1/2 L^-1 F D^1/2 theta_old
+//
+// (D commutes with L, whose blocks are the components), then the new
+// observation is added as above with q = f(0)^T F_pred^-1 f(0) =
+// g^T F^-1 g, g = D^-1/2 f(1). In covariance form, with C = F^-1 the
+// posterior and R the prior scale matrix of the state,
+//
+//	R = D^-1/2 G C G^T D^-1/2,  G = L^T,
+//
+// which is discount weighted estimation with a diagonal discount matrix
+// (Ameen and Harrison, "Discount weighted estimation", Journal of
+// Forecasting 3, 1984) and the multiple-discount form of component
+// discounting of dynamic linear models (West and Harrison, Bayesian
+// Forecasting and Dynamic Models, 2nd ed. 1997, ch. 6.3; their W_t inflates
+// only the diagonal blocks of G C G^T, this form also the cross-covariances
+// of trend and season, by 1/sqrt(lambda_T lambda_S)). The prior mean is the
+// shifted estimate L^T theta_old, which is why h_pred is formed from theta
+// and not by scaling h; with equal factors both give lambda L^-1 h. Before F
+// is positive definite there is no theta and h_pred = D^1/2 L^-1 D^1/2 h
+// (exact when F is block diagonal). References from memory.
+//
+// The residual scale: T and S are discounted by the larger factor,
+// lambda_V = max(lambda_T, lambda_S): T <- lambda_V T + 1,
+// S <- lambda_V S + e^2 / (1 + q). This is the variance discounting of West
+// and Harrison (ch. 10.8, n_t = delta n_(t-1) + 1, d_t = delta d_(t-1) +
+// S e^2 / Q) with delta = lambda_V: the observation noise is the most stable
+// part of the model, so it keeps the longest of the memories; with equal
+// factors it is lambda and the state is today's discounted least squares.
+// With unequal factors S is no longer a weighted residual sum of squares of
+// one fit but the sum of standardised one-step errors, which is what the
+// intervals need. Only equal factors take the fast paths below.
+//
 // The two models with p = 2, the local linear trend (L^-1 = [[1, 0],
 // [-1, 1]]) and a level with a period-2 cosine (L^-1 = diag(1, -1)), run
 // the same arithmetic through unrolled 2 x 2 kernels (shift2, mulVec2,
@@ -48,7 +85,14 @@ const MinRCond = 1e-10
 type State struct {
 	spec   Spec
 	p      int
-	lambda float64
+	lambda float64 // the factor of T, S and the error sums: Spec.VarianceFactor
+
+	// Component discounting (Spec.SeasonLambda differs from Lambda): dhalf
+	// holds D^1/2, the square root of each regressor's block factor; g is
+	// D^-1/2 f(1).
+	comp  bool
+	dhalf []float64
+	g     []float64
 
 	f0, f1 []float64  // f(0), f(1)
 	f0nz   []int      // indices i with f0[i] != 0, increasing
@@ -74,15 +118,23 @@ type State struct {
 	// rcondEvery updates, not on every one: see refactor.
 	rcondAge int
 
-	t   float64 // discounted count of observations, sum lambda^j
-	s   float64 // discounted residual sum of squares of the current fit
-	syy float64 // discounted sum of Y^2, only to start S when F first becomes pd
+	t float64 // discounted count of observations, sum lambda^j
+	s float64 // discounted residual sum of squares of the current fit
+	// te and t2 are the discounted count of the terms e^2 / (1 + q) in S
+	// and the discounted sum of their squared weights (lambda^2 per
+	// bucket): the scale of the intervals is S / te with the effective
+	// number te^2 / t2 of those terms as degrees of freedom (see Sigma).
+	te, t2 float64
+	syy    float64 // discounted sum of Y^2, only to start S when F first becomes pd
 
 	n     int64 // observations folded in
 	steps int64 // buckets advanced, observed or skipped
 
 	errs errorSums
 	tq   quantileCache
+	// pointOnly: Observe leaves the one-step interval out of its Step (no
+	// SE, no coverage), for model choice, which scores point errors only.
+	pointOnly bool
 }
 
 // errorSums accumulates one-step prediction errors e = Y - forecast, scored only
@@ -228,7 +280,8 @@ func NewState(spec Spec) (*State, error) {
 		buf = buf[n:]
 		return s
 	}
-	st := &State{spec: spec, p: p, lambda: spec.Lambda}
+	spec = spec.Canonical()
+	st := &State{spec: spec, p: p, lambda: spec.VarianceFactor(), comp: spec.componentDiscount()}
 	st.f0, st.f1, st.h, st.theta, st.hnew, st.vec = take(p), take(p), take(p), take(p), take(p), take(p)
 	st.f, st.chol, st.tmp = take(p*p), take(p*p), take(p*p)
 	spec.Regressors(0, st.f0)
@@ -244,6 +297,9 @@ func NewState(spec Spec) (*State, error) {
 	ints = ints[nf0:]
 	linv := spec.Shift(-1, st.tmp) // tmp is scratch: linv keeps a copy
 	st.linv = newSparseRows(linv, p, ints[:0:p+1], ints[p+1:p+1], take(nnz)[:0])
+	if st.comp {
+		st.initComponent()
+	}
 	if p == 2 {
 		st.unrolled = true
 		for i, x := range linv {
@@ -252,6 +308,114 @@ func NewState(spec Spec) (*State, error) {
 		}
 	}
 	return st, nil
+}
+
+// componentNow reports whether the next shift discounts by components: the
+// factors differ and the state is fitted (F positive definite and well
+// conditioned). Until then the state is discounted least squares with the
+// one factor lambda_V, which keeps h in the range of F (a weighted least
+// squares problem), so that the first theta is a fit and not the
+// amplified rounding of an inconsistent system; component discounting
+// needs that theta (componentH).
+func (st *State) componentNow() bool {
+	return st.comp && st.pd && st.rcond >= MinRCond
+}
+
+// initComponent sets up the arrays of component discounting. Tests call it
+// on a state with equal factors to run that path against the plain one.
+func (st *State) initComponent() {
+	p, spec := st.p, st.spec
+	st.comp = true
+	st.dhalf, st.g = make([]float64, p), make([]float64, p)
+	for i := range st.dhalf {
+		st.dhalf[i] = math.Sqrt(spec.SeasonFactor())
+		if i <= spec.Degree {
+			st.dhalf[i] = math.Sqrt(spec.Lambda)
+		}
+		st.g[i] = st.f1[i] / st.dhalf[i]
+	}
+}
+
+// shiftComponents applies the shift of component discounting over k
+// buckets (see State) with a = L^-k:
+//
+//	F_pred = D^k/2 a F a^T D^k/2
+//	h_pred = D^k/2 a F D^k/2 theta = D^k/2 a (dT h + (dS - dT) F P_S theta)
+//
+// where D^k/2 = dT I + (dS - dT) P_S, dT = lambda_T^(k/2), dS =
+// lambda_S^(k/2), and P_S projects on the seasonal block. It is computed as
+// lambda_T^k a F a^T with the seasonal block of rows and columns scaled by
+// rho = (lambda_S / lambda_T)^(k/2), and lambda_T^k a h likewise, plus the
+// term in dS - dT: with equal factors rho is exactly 1 and the second term
+// exactly 0, so the arithmetic is the plain recursion's. The term formed
+// from theta (whose rounding grows with the condition number of F) enters
+// only through the difference of the factors. Without theta (F not yet
+// positive definite) F P_S theta is replaced by P_S h. componentH sets hnew
+// (F unchanged, tmp[:p] used); componentF then shifts F.
+func (st *State) componentH(a sparseRows, k int) {
+	p, s0 := st.p, st.spec.Degree+1
+	wT, dT, dS, rho := st.componentWeights(k)
+	// x = (dS - dT) F P_S theta, or (dS - dT) P_S h without theta.
+	x := st.tmp[:p]
+	for i := range x {
+		switch {
+		case st.pd:
+			x[i] = dot(st.f[i*p+s0:i*p+p], st.theta[s0:p])
+		case i >= s0:
+			x[i] = st.h[i]
+		default:
+			x[i] = 0
+		}
+		x[i] *= dS - dT
+	}
+	// hnew = lambda_T^k a h with seasonal rows times rho, plus D^k/2 a x.
+	a.mulVec(st.h, st.hnew)
+	for i := range st.hnew {
+		st.hnew[i] *= wT
+		if i >= s0 {
+			st.hnew[i] *= rho
+		}
+	}
+	for i := range st.hnew {
+		lo, hi := a.start[i], a.start[i+1]
+		var sum float64
+		for j, c := range a.col[lo:hi] {
+			sum += a.val[lo+j] * x[c]
+		}
+		d := dT
+		if i >= s0 {
+			d = dS
+		}
+		st.hnew[i] += d * sum
+	}
+}
+
+// componentWeights returns lambda_T^k, lambda_T^(k/2), lambda_S^(k/2) and
+// (lambda_S / lambda_T)^(k/2).
+func (st *State) componentWeights(k int) (wT, dT, dS, rho float64) {
+	lt, ls := st.spec.Lambda, st.spec.SeasonFactor()
+	if k == 1 {
+		return lt, st.dhalf[0], st.dhalf[st.p-1], math.Sqrt(ls / lt)
+	}
+	half := float64(k) / 2
+	return math.Pow(lt, float64(k)), math.Pow(lt, half), math.Pow(ls, half), math.Pow(ls/lt, half)
+}
+
+// componentF sets F <- D^k/2 a F a^T D^k/2 (see componentH).
+func (st *State) componentF(a sparseRows, k int) {
+	p, s0 := st.p, st.spec.Degree+1
+	wT, _, _, rho := st.componentWeights(k)
+	st.shiftF(a, wT)
+	for i := 0; i < p; i++ {
+		for j := 0; j < p; j++ {
+			if i >= s0 {
+				st.f[i*p+j] *= rho
+			}
+			if j >= s0 {
+				st.f[i*p+j] *= rho
+			}
+		}
+	}
 }
 
 // sparseRows is a p x p matrix kept by its nonzero entries, row by row in
@@ -355,16 +519,50 @@ func (st *State) Ready() bool {
 	return st.pd && st.n >= int64(st.p+st.spec.BurnIn) && st.rcond >= MinRCond
 }
 
-// DF is the residual degrees of freedom T - p; sigma and intervals are
-// defined only when it is positive.
-func (st *State) DF() float64 { return st.t - float64(st.p) }
-
-// Sigma is the residual standard deviation sqrt(S / (T - p)), NaN while
-// T <= p. It is computed as sqrt(S) / sqrt(T - p): S near the largest
-// float64 divided by a small T - p overflowed to +Inf where the square
-// roots stay finite (found by the fuzzer: S = 9.3e306, T - p = 0.0085).
+// Sigma is the scale of the forecast errors, the square root of the
+// discounted mean square of the standardised one-step prediction errors
+//
+//	sigma^2 = S / Te,  S = sum_j lambda_V^j e_j^2 / (1 + q_j),  Te = sum_j lambda_V^j
+//
+// over the errors that entered S (Te counts them, with the state's weights;
+// a restart of S from its definition, before the first fit, counts as
+// T - p of them). One-step errors are predictions, not residuals of the
+// fit they came from, so no parameters are subtracted: unlike the
+// least-squares S / (T - p) (LSSigma), this stays defined and sound where
+// a short memory 1/(1 - lambda) comes close to p, the setting a lambda
+// search often lands on. NaN before the first error.
 func (st *State) Sigma() float64 {
-	df := st.DF()
+	if !(st.te > 0) {
+		return math.NaN()
+	}
+	// sqrt(S) / sqrt(Te): S near the largest float64 over a small Te
+	// overflowed to +Inf where the square roots stay finite (found by the
+	// fuzzer for the least-squares form: S = 9.3e306, T - p = 0.0085).
+	return math.Sqrt(st.s) / math.Sqrt(st.te)
+}
+
+// DF is the effective number of one-step errors behind Sigma,
+// Te^2 / sum_j lambda_V^2j (Kish's effective sample size of a weighted mean;
+// the degrees of freedom of Satterthwaite's approximation to a weighted sum
+// of chi-squares): about (1 + lambda_V) / (1 - lambda_V) in steady state.
+// Intervals use Student's t with these degrees of freedom; 0 before the
+// first error.
+func (st *State) DF() float64 {
+	if !(st.te > 0) || !(st.t2 > 0) {
+		return 0
+	}
+	return st.te * st.te / st.t2
+}
+
+// LSDF is the residual degrees of freedom of discounted least squares,
+// T - p.
+func (st *State) LSDF() float64 { return st.t - float64(st.p) }
+
+// LSSigma is the residual standard deviation of discounted least squares,
+// sqrt(S / (T - p)), NaN while T <= p. With one factor S is the discounted
+// residual sum of squares of the current fit.
+func (st *State) LSSigma() float64 {
+	df := st.LSDF()
 	if df <= 0 {
 		return math.NaN()
 	}
@@ -377,7 +575,8 @@ type Step struct {
 	Scored   bool    // the state was Ready before the observation
 	Forecast float64 // f(1)^T theta_old, the one-step forecast
 	Err      float64 // Y - Forecast
-	SE       float64 // standard error of the one-step forecast, NaN if T - p <= 0
+	SE       float64 // standard error of the one-step forecast, NaN before the first error
+	DF       float64 // degrees of freedom of its interval (State.DF before the observation)
 	// Lower95, Upper95 is the 95 % interval issued one step earlier. It is always
 	// filled when Y fell outside it; while T is still changing (the first
 	// few hundred steps) it may be NaN for a Y inside it: In80 and In95 are
@@ -399,31 +598,44 @@ func (st *State) Observe(y float64) (Step, error) {
 
 	// Score the one-step forecast of the old state.
 	ready := st.Ready()
+	// q = f(0)^T F_pred^-1 f(0).
 	var e, q float64
+	comp := st.componentNow()
 	if st.pd {
 		step.Forecast = dot(st.f1, st.theta)
 		e = y - step.Forecast
-		q = st.quadForm(st.f1) / lam
+		if comp {
+			q = st.quadForm(st.g)
+		} else {
+			q = st.quadForm(st.f1) / lam
+		}
 	}
 	if ready {
 		step.Scored, step.Err = true, e
 		step.SE, step.Lower95, step.Upper95 = math.NaN(), math.NaN(), math.NaN()
-		if df := st.DF(); df > 0 {
-			// Var(Y - forecast) = sigma^2 (1 + f(1)^T F^-1 f(1)).
-			step.SE = math.Sqrt(st.s/df) * math.Sqrt(1+lam*q)
+		if df := st.DF(); df > 0 && !st.pointOnly {
+			step.DF = df
+			// Var(Y - forecast) = sigma^2 (1 + q), q = f(0)^T F_pred^-1 f(0)
+			// (the variance factor of the one-step prediction; see Forecast).
+			step.SE = st.Sigma() * math.Sqrt(1+q)
 			st.score(&step, e, df)
 		}
 	}
 
 	// Work out everything that depends on y before touching the state, so
 	// that an overflow leaves it as it was.
-	if st.unrolled {
+	switch {
+	case comp:
+		st.componentH(st.linv, 1)
+	case st.unrolled:
 		mulVec2(&st.linv2, st.h, st.hnew)
-	} else {
+	default:
 		st.linv.mulVec(st.h, st.hnew)
 	}
-	for i := range st.hnew {
-		st.hnew[i] *= lam
+	if !comp {
+		for i := range st.hnew {
+			st.hnew[i] *= lam
+		}
 	}
 	for _, i := range st.f0nz {
 		st.hnew[i] += st.f0[i] * y
@@ -448,9 +660,12 @@ func (st *State) Observe(y float64) (Step, error) {
 		st.errs.decay(lam)
 	}
 
-	if st.unrolled {
+	switch {
+	case comp:
+		st.componentF(st.linv, 1)
+	case st.unrolled:
 		shift2(&st.linv2, st.f, lam)
-	} else {
+	default:
 		st.shiftF(st.linv, lam)
 	}
 	for _, i := range st.f0nz {
@@ -471,14 +686,18 @@ func (st *State) Observe(y float64) (Step, error) {
 	switch {
 	case st.pd && wasFitted:
 		st.s = s
+		st.te, st.t2 = lam*st.te+1, lam*lam*st.t2+1
 	case st.pd:
 		// F is positive definite but was not well conditioned one step
 		// earlier: start (or restart) S from its definition,
 		// S = syy - h^T F^-1 h, with h^T F^-1 h = ||C^-1 h||^2 (a sum of
-		// squares: at worst +Inf for huge values, never NaN).
+		// squares: at worst +Inf for huge values, never NaN). It holds
+		// T - p degrees of freedom, counted as that many unit terms.
 		st.s = math.Max(0, st.syy-st.quadForm(st.h))
+		st.te = math.Max(0, st.t-float64(st.p))
+		st.t2 = st.te
 	default:
-		st.s = 0
+		st.s, st.te, st.t2 = 0, 0, 0
 	}
 	st.n++
 	st.steps++
@@ -526,6 +745,8 @@ func (es *errorSums) decay(w float64) {
 //
 //	F <- lambda^k L^-k F L^-kT,  h <- lambda^k L^-k h,  T, S <- lambda^k T, S
 //
+// (with component discounting D^k/2 L^-k F L^-kT D^k/2 and the h of
+// componentH, T and S by lambda_V^k),
 // after which theta_new = (L^T)^k theta_old.
 func (st *State) Skip(k int) error {
 	if k < 0 {
@@ -539,21 +760,38 @@ func (st *State) Skip(k int) error {
 	}
 	w := math.Pow(st.lambda, float64(k))
 	lk := st.tmpShift(k)
-	lk.mulVec(st.h, st.hnew)
-	for i := range st.hnew {
-		st.hnew[i] *= w
+	if st.componentNow() {
+		// F <- D^k/2 L^-k F L^-kT D^k/2, h <- F_pred (L^T)^k theta. The
+		// product F theta can overflow where F h could not (found by the
+		// fuzzer: values near 1e300): then nothing changes.
+		st.componentH(lk, k)
+		var nonFinite float64
+		for _, x := range st.hnew {
+			nonFinite += x - x
+		}
+		if nonFinite != 0 {
+			return fmt.Errorf("estimator: cannot skip %d buckets: the shifted state overflows (values too large)", k)
+		}
+		st.componentF(lk, k)
+	} else {
+		lk.mulVec(st.h, st.hnew)
+		for i := range st.hnew {
+			st.hnew[i] *= w
+		}
+		st.shiftF(lk, w)
 	}
-	st.shiftF(lk, w)
 	st.h, st.hnew = st.hnew, st.h
 	st.t *= w
 	st.s *= w
+	st.te *= w
+	st.t2 *= w * w
 	st.syy *= w
 	st.errs.decay(w)
 	st.steps += int64(k)
 	st.rcondAge = 0 // a gap can change the conditioning a lot: check it now
 	st.refactor()
 	if !st.pd {
-		st.s = 0
+		st.s, st.te, st.t2 = 0, 0, 0
 	}
 	return nil
 }
@@ -690,6 +928,7 @@ func (st *State) Clone() *State {
 	copy(c.theta, st.theta)
 	c.pd, c.rcond, c.rcondAge = st.pd, st.rcond, st.rcondAge
 	c.t, c.s, c.syy, c.n, c.steps = st.t, st.s, st.syy, st.n, st.steps
+	c.te, c.t2 = st.te, st.t2
 	c.errs, c.tq = st.errs, st.tq
 	return c
 }

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -50,73 +51,84 @@ func TestTuneMatchesSearch(t *testing.T) {
 	for _, k := range keys {
 		all = append(all, series[k].ys)
 	}
-	// Lambda within 1e-4 and RMSE relative 1e-6: the sums in the database
-	// are added in another order, which moves the objective in its last
-	// digits and the golden-section search (tolerance 1e-5) with it.
-	check := func(name string, r TuneResult, spec estimator.Spec, ys [][]float64) {
+	// The same model choice run on the daily sums worked out in Go
+	// (estimator.Choose, the tracker's degree and harmonics fixed, the
+	// warm-up of the full comparison; the factors in use among the
+	// candidates) and the models in use scored on the same buckets
+	// (estimator.Pooled). RMSE relative 1e-6: the sums in the database are
+	// added in another order, which moves the errors in their last digits.
+	grid := estimator.ChoiceGrid()
+	free, err := estimator.Choose(all, estimator.ChooseOptions{Period: 7,
+		Lambdas: append(slices.Clone(grid), 0.95), SeasonLambdas: append(slices.Clone(grid), 0.95)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	check := func(name string, r TuneResult, ys [][]float64, o estimator.ChooseOptions) {
 		t.Helper()
-		want, err := estimator.SearchLambda(spec, ys, estimator.SearchOptions{})
+		o.Period, o.Degrees, o.Harmonics = 7, []int{1}, []int{2}
+		want, err := estimator.Choose(ys, o)
 		if err != nil {
 			t.Fatal(err)
 		}
-		sse, n, err := estimator.Objective(spec, ys)
+		specs := make([]estimator.Spec, len(ys))
+		for i := range specs {
+			specs[i] = salesSpec
+		}
+		before, err := estimator.Pooled(specs, ys, want.Warmup)
 		if err != nil {
 			t.Fatal(err)
 		}
-		if math.Abs(r.Lambda-want.Lambda) > 1e-4 || !scalar.EqualWithinRel(r.RMSEAfter, math.Sqrt(want.MSE), 1e-6) {
-			t.Errorf("%s: lambda %v rmse %v, want %v and %v", name, r.Lambda, r.RMSEAfter, want.Lambda, math.Sqrt(want.MSE))
+		if r.Lambda != want.Spec.Lambda || r.SeasonLambda != want.Spec.SeasonLambda || !scalar.EqualWithinRel(r.RMSEAfter, want.Score.RMSE, 1e-6) ||
+			r.N != want.Score.N || r.Warmup != want.Warmup {
+			t.Errorf("%s: %v %v rmse %v n %d warm-up %d, want %v rmse %v n %d warm-up %d", name, r.Lambda, r.SeasonLambda, r.RMSEAfter, r.N, r.Warmup,
+				want.Spec, want.Score.RMSE, want.Score.N, want.Warmup)
 		}
-		if !scalar.EqualWithinRel(r.RMSEBefore, math.Sqrt(sse/float64(n)), 1e-9) || r.LambdaBefore != spec.Lambda {
-			t.Errorf("%s: before lambda %v rmse %v, want %v and %v", name, r.LambdaBefore, r.RMSEBefore, spec.Lambda, math.Sqrt(sse/float64(n)))
+		if !scalar.EqualWithinRel(r.RMSEBefore, before.RMSE, 1e-6) || r.LambdaBefore != salesSpec.Lambda {
+			t.Errorf("%s: before lambda %v rmse %v, want %v and %v", name, r.LambdaBefore, r.RMSEBefore, salesSpec.Lambda, before.RMSE)
 		}
 		if !scalar.EqualWithinRel(r.MemoryBuckets, 1/(1-r.Lambda), 1e-12) {
 			t.Errorf("%s: memory %v, want 1/(1 - %v)", name, r.MemoryBuckets, r.Lambda)
 		}
-		if r.RMSEAfter > r.RMSEBefore {
+		if r.RMSEAfter > r.RMSEBefore*(1+1e-9) {
 			t.Errorf("%s: tuned rmse %v is worse than before %v", name, r.RMSEAfter, r.RMSEBefore)
 		}
 	}
-	check("tracker-wide", res[0], salesSpec, all)
+	check("tracker-wide", res[0], all, estimator.ChooseOptions{Warmup: free.Warmup,
+		Lambdas: append(slices.Clone(grid), 0.95), SeasonLambdas: append(slices.Clone(grid), 0.95)})
 	for i, k := range keys {
 		if res[1+i].SeriesKey == nil || *res[1+i].SeriesKey != k {
 			t.Fatalf("result %d is for %v, want %q", 1+i, res[1+i].SeriesKey, k)
 		}
-		check("series "+k, res[1+i], salesSpec, [][]float64{series[k].ys})
-	}
-	if len(res[0].Curve) != len(estimator.DefaultGrid()) {
-		t.Errorf("curve has %d points, want the default grid's %d", len(res[0].Curve), len(estimator.DefaultGrid()))
+		check("series "+k, res[1+i], [][]float64{series[k].ys}, estimator.ChooseOptions{
+			Lambdas: append(slices.Clone(grid), 0.95), SeasonLambdas: []float64{0}})
 	}
 
-	// Models: degree 0, 1 (current) and 2, all with the weekly season, on
-	// the same count of errors.
+	// Models: every degree 0 to 2 with 0 to 3 harmonics of the weekly
+	// period, best first, on the same count of errors; the entry of the
+	// current degree and harmonics is the tuned model with the same RMSE.
 	ms := res[0].Models
-	if len(ms) != 3 || !ms[0].Current || ms[0].Degree != 1 || ms[1].Degree != 0 || ms[2].Degree != 2 {
-		t.Fatalf("models %+v: want current degree 1, then 0 and 2", ms)
+	if len(ms) != 12 || res[0].Best != 0 {
+		t.Fatalf("models %+v best %d: want 12, the best first", ms, res[0].Best)
 	}
+	current := 0
 	for _, m := range ms {
-		if m.N != ms[0].N || m.N == 0 || m.Harmonics != 2 || m.Period != 7 {
-			t.Errorf("model %+v: want N %d and the weekly season of 2 harmonics", m, ms[0].N)
+		if m.N != ms[0].N || m.N == 0 || m.RMSE < ms[0].RMSE {
+			t.Errorf("model %+v: want N %d and an RMSE at least the best's %v", m, ms[0].N, ms[0].RMSE)
 		}
-		if ms[res[0].Best].RMSE > m.RMSE {
-			t.Errorf("best model %d has rmse %v, above %+v", res[0].Best, ms[res[0].Best].RMSE, m)
+		if m.Current {
+			current++
+			if m.Degree != 1 || m.Harmonics != 2 || m.RMSE != res[0].RMSEAfter || m.Lambda != res[0].Lambda {
+				t.Errorf("current model %+v: want degree 1, 2 harmonics, lambda %v and rmse %v", m, res[0].Lambda, res[0].RMSEAfter)
+			}
 		}
 	}
-	// The quadratic has the most parameters, so it starts scoring last: the
-	// common buckets are exactly the ones it scores, and its RMSE there is
-	// its own objective at its lambda (the series have no gap).
-	quad := salesSpec
-	quad.Degree, quad.Lambda = 2, ms[2].Lambda
-	sse, n, err := estimator.Objective(quad, all)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if n != ms[2].N || !scalar.EqualWithinRel(ms[2].RMSE, math.Sqrt(sse/float64(n)), 1e-9) {
-		t.Errorf("quadratic: N %d rmse %v, want %d and %v", ms[2].N, ms[2].RMSE, n, math.Sqrt(sse/float64(n)))
+	if current != 1 {
+		t.Errorf("%d models marked current, want 1", current)
 	}
 
-	// Progress saw every series loaded, searched, and the three models.
-	if prog.total != int64(2*len(keys)+3) || prog.done != prog.total || !prog.finished {
-		t.Errorf("progress %+v, want %d of %d and Done", prog, 2*len(keys)+3, 2*len(keys)+3)
+	// Progress saw every series loaded and searched, and the comparison.
+	if prog.total != int64(2*len(keys)+1) || prog.done != prog.total || !prog.finished {
+		t.Errorf("progress %+v, want %d of %d and Done", prog, 2*len(keys)+1, 2*len(keys)+1)
 	}
 
 	// Nothing applied.
@@ -246,8 +258,8 @@ func TestTuneModelSwitch(t *testing.T) {
 		t.Fatal(err)
 	}
 	r := res[0]
-	if len(r.Models) != 2 || r.Best != 1 || r.Models[1].Degree != 1 || !r.ModelSwitched {
-		t.Fatalf("models %+v best %d switched %v: want degree 0 and 1, the linear trend best and switched to", r.Models, r.Best, r.ModelSwitched)
+	if len(r.Models) != 3 || r.Best != 0 || r.Models[0].Degree != 1 || r.Models[0].Current || !r.ModelSwitched {
+		t.Fatalf("models %+v best %d switched %v: want degrees 0 to 2, the linear trend best and switched to", r.Models, r.Best, r.ModelSwitched)
 	}
 	var degree int
 	var lambda float64
@@ -255,8 +267,8 @@ func TestTuneModelSwitch(t *testing.T) {
 	if err := pool.QueryRow(ctx, `SELECT degree, lambda, period FROM sidetrend.trackers WHERE name = 'orders'`).Scan(&degree, &lambda, &period); err != nil {
 		t.Fatal(err)
 	}
-	if degree != 1 || lambda != r.Models[1].Lambda || period != nil {
-		t.Errorf("tracker now degree %d lambda %v period %v, want 1, %v, NULL", degree, lambda, period, r.Models[1].Lambda)
+	if degree != 1 || lambda != r.Models[0].Lambda || period != nil {
+		t.Errorf("tracker now degree %d lambda %v period %v, want 1, %v, NULL", degree, lambda, period, r.Models[0].Lambda)
 	}
 	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
 		t.Fatal(err)
@@ -385,20 +397,21 @@ func TestTuneAuto(t *testing.T) {
 	if err != nil || tuned != 1 || !applied {
 		t.Fatalf("TunePending: %d tuned, applied %v, err %v; want 1 and applied", tuned, applied, err)
 	}
-	var lambda, stored float64
+	var lambda, stored, season, storedSeason float64
 	var auto bool
-	if err := pool.QueryRow(ctx, `SELECT t.lambda, t.auto_tune, g.lambda FROM sidetrend.trackers t
-		JOIN sidetrend.tuning g ON g.tracker_id = t.id AND g.scope = 'tracker'`).Scan(&lambda, &auto, &stored); err != nil {
+	if err := pool.QueryRow(ctx, `SELECT t.lambda, t.auto_tune, g.lambda, coalesce(t.season_lambda, 0), coalesce(g.season_lambda, 0)
+		FROM sidetrend.trackers t
+		JOIN sidetrend.tuning g ON g.tracker_id = t.id AND g.scope = 'tracker'`).Scan(&lambda, &auto, &stored, &season, &storedSeason); err != nil {
 		t.Fatal(err)
 	}
-	if lambda != stored || !auto {
-		t.Fatalf("tracker lambda %v auto_tune %v, want the stored %v and true", lambda, auto, stored)
+	if lambda != stored || season != storedSeason || !auto {
+		t.Fatalf("tracker lambda %v (seasonal %v) auto_tune %v, want the stored %v (%v) and true", lambda, season, auto, stored, storedSeason)
 	}
 	if err := s.CatchUp(ctx); err != nil {
 		t.Fatal(err)
 	}
 	spec := salesSpec
-	spec.Lambda = lambda
+	spec.Lambda, spec.SeasonLambda = lambda, season
 	compareForecasts(t, pool, "sales", offlineFit(t, pool, "sales", spec), 14)
 	// Results stored and nothing requested: nothing to do.
 	if tuned, _, err := TunePending(ctx, pool, 0, nil); err != nil || tuned != 0 {

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -25,6 +26,7 @@ type SeriesData struct {
 	FirstIndex int64          // bucket index of Values[0]
 	LastIndex  int64          // bucket index of the newest folded bucket
 	Values     []float64
+	Counts     []int64     // source rows in each bucket of Values (0: none)
 	Starts     []time.Time // start of each bucket in Values
 	State      []byte      // stored estimator state, nil while nothing is folded
 	Ready      bool
@@ -103,9 +105,35 @@ func LoadSeries(ctx context.Context, q querier, tracker, key string) (*SeriesDat
 			y = math.NaN()
 		}
 		d.Values = append(d.Values, y)
+		d.Counts = append(d.Counts, p.n)
 		d.Starts = append(d.Starts, start)
 	}
 	return d, rows.Err()
+}
+
+// WithoutPartialStart returns Values without a first bucket that the
+// source covers only in part: one with fewer than half the rows of the
+// median bucket with rows (a meter whose first day holds 11 of 24 hourly
+// readings). Model choice leaves such a bucket out: its value belongs to
+// no full bucket and its error would count against every model.
+func (d *SeriesData) WithoutPartialStart() []float64 {
+	if len(d.Counts) < 3 || len(d.Counts) != len(d.Values) {
+		return d.Values
+	}
+	var ns []int64
+	for _, n := range d.Counts {
+		if n > 0 {
+			ns = append(ns, n)
+		}
+	}
+	if len(ns) < 3 {
+		return d.Values
+	}
+	slices.Sort(ns)
+	if med := ns[len(ns)/2]; d.Counts[0] > 0 && 2*d.Counts[0] < med {
+		return d.Values[1:]
+	}
+	return d.Values
 }
 
 // SeriesRow is one folded series as listed by ListSeries.

@@ -59,7 +59,8 @@ func (t *Tracker) buildCalendar() {
 
 const trackersSQL = `
 SELECT id, name, source_name, bucket::text, tz, agg, empty, degree, coalesce(period, 0), harmonics,
-       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status, settings_version
+       coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status, settings_version,
+       coalesce(season_lambda, 0)
 FROM sidetrend.trackers ORDER BY id`
 
 // LoadTrackers reads every tracker.
@@ -73,10 +74,13 @@ func LoadTrackers(ctx context.Context, q querier) (map[int]*Tracker, error) {
 		t := &Tracker{}
 		if err := rows.Scan(&t.ID, &t.Name, &t.Source, &t.Bucket, &t.TZ, &t.Agg, &t.Empty,
 			&t.Spec.Degree, &t.Spec.Period, &t.Spec.Harmonics, &t.Spec.Lambda, &t.LambdaAuto,
-			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status, &t.Version); err != nil {
+			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status, &t.Version, &t.Spec.SeasonLambda); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("load trackers: %w", err)
 		}
+		// A seasonal factor without seasonal terms, or equal to lambda,
+		// changes nothing.
+		t.Spec = t.Spec.Canonical()
 		t.buildCalendar()
 		out[t.ID] = t
 	}

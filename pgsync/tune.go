@@ -8,7 +8,9 @@ import (
 	"log/slog"
 	"math"
 	"runtime"
+	"slices"
 	"sort"
+	"strings"
 	"sync"
 	"time"
 
@@ -44,13 +46,14 @@ type TuneOptions struct {
 // RMSE of its one-step errors on the buckets every model of the comparison
 // scored (so that all have the same count N).
 type ModelScore struct {
-	Degree    int     `json:"degree"`
-	Period    float64 `json:"period"`
-	Harmonics int     `json:"harmonics"`
-	Lambda    float64 `json:"lambda"`
-	RMSE      float64 `json:"rmse"`
-	N         int64   `json:"n"`
-	Current   bool    `json:"current"`
+	Degree       int     `json:"degree"`
+	Period       float64 `json:"period"`
+	Harmonics    int     `json:"harmonics"`
+	Lambda       float64 `json:"lambda"`
+	SeasonLambda float64 `json:"season_lambda"` // 0: the same as Lambda
+	RMSE         float64 `json:"rmse"`
+	N            int64   `json:"n"`
+	Current      bool    `json:"current"`
 }
 
 // TuneResult is the lambda search of one tracker (SeriesKey nil: all its
@@ -60,19 +63,34 @@ type TuneResult struct {
 	SeriesKey *string
 	Series    int   // series the result covers
 	Points    int64 // bucket values they hold (gaps excluded)
-	// LambdaBefore is the lambda in use: the tracker's, or the series' own.
-	LambdaBefore float64
-	// Lambda is the one the search chose, MemoryBuckets its effective
-	// memory 1/(1 - lambda) in buckets; NaN when nothing could be scored.
-	Lambda, MemoryBuckets float64
-	// RMSEBefore and RMSEAfter are sqrt(mean squared one-step error after
-	// burn-in) at the lambda in use and at the chosen one.
+	// LambdaBefore is the lambda in use: the tracker's, or the series' own;
+	// SeasonLambdaBefore the seasonal factor in use (0: the same).
+	LambdaBefore, SeasonLambdaBefore float64
+	// Lambda and SeasonLambda (0: the same) are the factors the search
+	// chose for the model's degree and harmonics, MemoryBuckets the
+	// effective memory 1/(1 - lambda) in buckets; NaN when nothing could
+	// be scored.
+	Lambda, SeasonLambda, MemoryBuckets float64
+	// RMSEBefore and RMSEAfter are sqrt(mean squared one-step error) of
+	// the model in use and of the chosen one, over the same buckets: each
+	// series' buckets after its first Warmup, every forecast made from the
+	// buckets before it only (estimator.Choose).
 	RMSEBefore, RMSEAfter float64
-	N                     int64 // one-step errors scored at the chosen lambda
+	N                     int64 // one-step errors scored
+	Warmup                int   // leading buckets of each series not scored
+	// AtBound names each chosen setting that sits on the edge of the
+	// range searched (estimator.Choice.AtBound).
+	AtBound []string
+	// ModelBefore and Model describe the model in use and the chosen one
+	// (estimator.ModelText); empty when nothing was scored.
+	ModelBefore, Model string
 
-	// Tracker-wide results only: the search's grid, and the model
-	// comparison (Models[Best] has the smallest RMSE; -1 when none scored).
-	Curve  []estimator.CurvePoint
+	// Tracker-wide results only: the model comparison, the best factors of
+	// every degree (0 to 2) and number of harmonics (0 to 6 with a
+	// period), scored like RMSEAfter (Models[Best] has the smallest RMSE;
+	// -1 when none scored). The entry of the current degree and harmonics
+	// is the chosen model, with the same RMSE as RMSEAfter.
+	Curve  []estimator.CurvePoint // not filled since model choice on held-out errors
 	Models []ModelScore
 	Best   int
 
@@ -275,62 +293,102 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 	}
 	out := &trackerTuning{}
 	all := make([][]float64, len(data))
+	specs := make([]estimator.Spec, len(data))
 	for i, d := range data {
-		all[i] = d.Values
+		all[i], specs[i] = d.WithoutPartialStart(), d.Spec
 	}
-
-	// Tracker-wide: before at each series' lambda in use, after at one
-	// lambda for all; the simpler and richer models get their own search.
-	tr := TuneResult{Tracker: t.Name, Series: len(data), LambdaBefore: t.Spec.Lambda, Best: -1}
-	var sse float64
-	var n int64
-	for _, d := range data {
-		s, k, err := estimator.Objective(d.Spec, [][]float64{d.Values})
-		if err != nil {
-			return nil, fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
+	grid := estimator.ChoiceGrid()
+	if opt != (estimator.SearchOptions{}) {
+		if grid, err = estimator.LambdaGrid(opt); err != nil {
+			return nil, err
 		}
-		sse, n = sse+s, n+k
+	}
+	// The factors in use are candidates too: a choice is never worse than
+	// them on the buckets it is scored on.
+	trendGrid := append(slices.Clone(grid), t.Spec.Lambda)
+	seasonGrid := append(slices.Clone(grid), t.Spec.SeasonFactor())
+
+	// Tracker-wide: every degree and number of harmonics with their best
+	// factors over all series together, then the current degree and
+	// harmonics on their own (the same search restricted: the same result
+	// as its entry among the models), and the models in use, all scored on
+	// the same buckets.
+	tr := TuneResult{Tracker: t.Name, Series: len(data), LambdaBefore: t.Spec.Lambda,
+		SeasonLambdaBefore: t.Spec.Canonical().SeasonLambda, Best: -1}
+	for _, d := range data {
 		tr.Points += observed(d.Values)
 	}
-	tr.RMSEBefore = rmse(sse, n)
-	searches := make([]estimator.SearchResult, len(cands))
-	errs := make([]error, len(cands))
-	parallel(len(cands), func(i int) {
-		searches[i], errs[i] = estimator.SearchLambda(cands[i], all, opt)
-		if prog != nil {
-			prog.Add(1)
-		}
-	})
-	if err := errs[0]; err != nil && !errors.Is(err, estimator.ErrNoErrors) {
-		return nil, fmt.Errorf("tune tracker %q: %w", t.Name, err)
+	free := estimator.ChooseOptions{Period: t.Spec.Period, BurnIn: t.Spec.BurnIn, Lambdas: trendGrid, SeasonLambdas: seasonGrid}
+	if t.Spec.Period == 0 {
+		free.Harmonics = []int{0}
 	}
-	fillResult(&tr, searches[0], errs[0])
-	tr.Curve = searches[0].Curve
-	if errs[0] == nil {
-		tr.Models, tr.Best = compareModels(cands, searches, errs, all)
+	all3, err := estimator.Choose(all, free)
+	if prog != nil {
+		prog.Add(int64(len(cands)))
+	}
+	switch {
+	case errors.Is(err, estimator.ErrNoErrors):
+		noErrors(&tr)
+	case err != nil:
+		return nil, fmt.Errorf("tune tracker %q: %w", t.Name, err)
+	default:
+		fixed := free
+		fixed.Degrees, fixed.Harmonics, fixed.Warmup = []int{t.Spec.Degree}, []int{t.Spec.Harmonics}, all3.Warmup
+		ch, err := estimator.Choose(all, fixed)
+		if errors.Is(err, estimator.ErrNoErrors) {
+			noErrors(&tr)
+			break
+		}
+		if err != nil {
+			return nil, fmt.Errorf("tune tracker %q: %w", t.Name, err)
+		}
+		before, err := estimator.Pooled(specs, all, all3.Warmup)
+		if err != nil {
+			return nil, fmt.Errorf("tune tracker %q: %w", t.Name, err)
+		}
+		fillChoice(&tr, ch, before, t.Spec)
+		for _, c := range all3.Tried {
+			tr.Models = append(tr.Models, ModelScore{Degree: c.Spec.Degree, Period: c.Spec.Period, Harmonics: c.Spec.Harmonics,
+				Lambda: c.Spec.Lambda, SeasonLambda: c.Spec.SeasonLambda, RMSE: c.Score.RMSE, N: c.Score.N,
+				Current: c.Spec.Degree == t.Spec.Degree && c.Spec.Harmonics == t.Spec.Harmonics})
+		}
+		tr.Best = 0 // Tried is sorted, best first
 	}
 	out.tracker = tr
 
 	if perSeries {
+		// Per series: the trend factor of the tracker's model for each
+		// series on its own; the seasonal factor stays the tracker's
+		// (series store only their own lambda).
+		season := []float64{0}
+		if sl := t.Spec.Canonical().SeasonLambda; sl != 0 {
+			season = []float64{sl}
+		}
 		out.series = make([]TuneResult, len(data))
 		perr := make([]error, len(data))
 		parallel(len(data), func(i int) {
 			d := data[i]
 			key := d.Key
 			r := TuneResult{Tracker: t.Name, SeriesKey: &key, Series: 1, Points: observed(d.Values),
-				LambdaBefore: d.Spec.Lambda, Best: -1}
-			s, k, err := estimator.Objective(d.Spec, [][]float64{d.Values})
-			if err != nil {
+				LambdaBefore: d.Spec.Lambda, SeasonLambdaBefore: d.Spec.Canonical().SeasonLambda, Best: -1}
+			o := estimator.ChooseOptions{Period: t.Spec.Period, BurnIn: t.Spec.BurnIn, Degrees: []int{t.Spec.Degree},
+				Harmonics: []int{t.Spec.Harmonics}, Lambdas: append(slices.Clone(grid), d.Spec.Lambda), SeasonLambdas: season}
+			ys := all[i]
+			ch, err := estimator.Choose([][]float64{ys}, o)
+			switch {
+			case errors.Is(err, estimator.ErrNoErrors):
+				noErrors(&r)
+			case err != nil:
 				perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
 				return
+			default:
+				before, err := estimator.Pooled([]estimator.Spec{d.Spec}, [][]float64{ys}, ch.Warmup)
+				if err != nil {
+					perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
+					return
+				}
+				fillChoice(&r, ch, before, d.Spec)
 			}
-			r.RMSEBefore = rmse(s, k)
-			res, err := estimator.SearchLambda(d.Spec, [][]float64{d.Values}, opt)
-			if err != nil && !errors.Is(err, estimator.ErrNoErrors) {
-				perr[i] = fmt.Errorf("tune tracker %q series %q: %w", t.Name, d.Key, err)
-				return
-			}
-			fillResult(&r, res, err)
 			out.series[i] = r
 			if prog != nil {
 				prog.Add(1)
@@ -343,15 +401,29 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 	return out, nil
 }
 
-func fillResult(r *TuneResult, res estimator.SearchResult, err error) {
-	if err != nil {
-		r.Lambda, r.MemoryBuckets, r.RMSEAfter = math.NaN(), math.NaN(), math.NaN()
-		r.Note = "too short: no one-step error after the parameters plus burn-in"
-		return
+// noErrors marks a result without any scored one-step error.
+func noErrors(r *TuneResult) {
+	r.Lambda, r.SeasonLambda, r.MemoryBuckets, r.RMSEAfter, r.RMSEBefore = math.NaN(), math.NaN(), math.NaN(), math.NaN(), math.NaN()
+	r.Note = "too short: no one-step error after the warm-up, the parameters and the burn-in"
+}
+
+func optText(s string) *string {
+	if s == "" {
+		return nil
 	}
-	r.Lambda, r.N = res.Lambda, res.N
-	r.MemoryBuckets = 1 / (1 - res.Lambda)
-	r.RMSEAfter = math.Sqrt(res.MSE)
+	return &s
+}
+
+// fillChoice records a choice and the score of the model in use, both
+// over the same buckets.
+func fillChoice(r *TuneResult, ch estimator.Choice, before estimator.Score, inUse estimator.Spec) {
+	r.Model, r.ModelBefore = estimator.ModelText(ch.Spec), estimator.ModelText(inUse)
+	r.Lambda, r.SeasonLambda, r.N, r.Warmup, r.AtBound = ch.Spec.Lambda, ch.Spec.SeasonLambda, ch.Score.N, ch.Warmup, ch.AtBound
+	r.MemoryBuckets = 1 / (1 - ch.Spec.Lambda)
+	r.RMSEAfter, r.RMSEBefore = ch.Score.RMSE, before.RMSE
+	if math.IsInf(r.RMSEBefore, 1) {
+		r.RMSEBefore = math.NaN()
+	}
 }
 
 func rmse(sse float64, n int64) float64 {
@@ -371,100 +443,9 @@ func observed(ys []float64) int64 {
 	return n
 }
 
-// candidates returns the tracker's model first, then one simpler and one
-// richer model where they exist: the polynomial degree one lower and one
-// higher with the same season; where the degree is at its limit (0 below,
-// estimator.MaxDegree above), one harmonic fewer or more instead (fewer
-// than one harmonic means no season).
-func candidates(s estimator.Spec) []estimator.Spec {
-	out := []estimator.Spec{s}
-	simpler, richer := s, s
-	switch {
-	case s.Degree > 0:
-		simpler.Degree--
-		out = append(out, simpler)
-	case s.Harmonics > 1:
-		simpler.Harmonics--
-		out = append(out, simpler)
-	case s.Harmonics == 1:
-		simpler.Harmonics, simpler.Period = 0, 0
-		out = append(out, simpler)
-	}
-	switch {
-	case s.Degree < estimator.MaxDegree:
-		richer.Degree++
-		out = append(out, richer)
-	case s.Period > 0:
-		richer.Harmonics++
-		if richer.Validate() == nil {
-			out = append(out, richer)
-		}
-	}
-	return out
-}
-
-// compareModels scores every candidate at its own best lambda on the
-// buckets where all of them scored a one-step error (a richer model has more
-// parameters and starts scoring later), so that the counts match.
-func compareModels(cands []estimator.Spec, searches []estimator.SearchResult, errs []error, series [][]float64) ([]ModelScore, int) {
-	var specs []estimator.Spec
-	var models []ModelScore
-	for i, c := range cands {
-		if errs[i] != nil {
-			continue
-		}
-		c.Lambda = searches[i].Lambda
-		specs = append(specs, c)
-		models = append(models, ModelScore{Degree: c.Degree, Period: c.Period, Harmonics: c.Harmonics,
-			Lambda: c.Lambda, Current: i == 0})
-	}
-	sse := make([]float64, len(specs))
-	var n int64
-	step := make([]float64, len(specs))
-	states := make([]*estimator.State, len(specs))
-	for _, ys := range series {
-		for i, sp := range specs {
-			states[i], _ = estimator.NewState(sp) // validated by the search
-		}
-		for _, y := range ys {
-			all := true
-			for i, st := range states {
-				if math.IsNaN(y) {
-					st.Skip(1)
-					all = false
-					continue
-				}
-				s, err := st.Observe(y)
-				if err != nil {
-					// As the drain does: a value that cannot be folded in
-					// is a bucket without a value.
-					st.Skip(1)
-				}
-				if err != nil || !s.Scored {
-					all = false
-				}
-				step[i] = s.Err
-			}
-			if !all {
-				continue
-			}
-			n++
-			for i := range specs {
-				sse[i] += step[i] * step[i]
-			}
-		}
-	}
-	best := -1
-	for i := range models {
-		models[i].N = n
-		models[i].RMSE = rmse(sse[i], n)
-		// The current model keeps the lead on a tie: it is listed first.
-		if n > 0 && (best < 0 || models[i].RMSE < models[best].RMSE) {
-			best = i
-		}
-	}
-	return models, best
-}
+// candidates is the tracker's model; the comparison of degrees and
+// harmonics is estimator.Choose's (used for the progress count).
+func candidates(s estimator.Spec) []estimator.Spec { return []estimator.Spec{s} }
 
 // parallel runs fn(0..n-1) on as many goroutines as there are CPUs.
 func parallel(n int, fn func(i int)) {
@@ -492,9 +473,10 @@ const deleteTuningSQL = `DELETE FROM sidetrend.tuning WHERE tracker_id = $1 AND 
 const insertTuningSQL = `
 INSERT INTO sidetrend.tuning (tracker_id, scope, series_key, lambda_before, lambda, memory_buckets,
     rmse_before, rmse_after, n_errors, series_count, points, curve_lambda, curve_rmse,
-    degree, harmonics, models, best_degree, best_harmonics, note, applied_at)
+    degree, harmonics, models, best_degree, best_harmonics, note, applied_at,
+    season_lambda_before, season_lambda, at_bound, model_before, model)
 VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19,
-        CASE WHEN $20::bool THEN now() END)`
+        CASE WHEN $20::bool THEN now() END, $21, $22, $23, $24, $25)`
 
 // What storeTuning applies.
 const (
@@ -531,19 +513,26 @@ func storeTuning(ctx context.Context, pool *pgxpool.Pool, t *Tracker, tr *tracke
 	}
 	switch {
 	case toTracker:
-		lambda, degree, harmonics, period := r.Lambda, t.Spec.Degree, t.Spec.Harmonics, t.Spec.Period
-		if switchModel && r.Best > 0 {
+		lambda, season, degree, harmonics, period := r.Lambda, r.SeasonLambda, t.Spec.Degree, t.Spec.Harmonics, t.Spec.Period
+		if switchModel && r.Best >= 0 && !r.Models[r.Best].Current {
 			m := r.Models[r.Best]
-			lambda, degree, harmonics, period = m.Lambda, m.Degree, m.Harmonics, m.Period
+			lambda, season, degree, harmonics = m.Lambda, m.SeasonLambda, m.Degree, m.Harmonics
+			if harmonics > 0 {
+				period = m.Period
+			}
 			r.ModelSwitched = true
 		}
 		var p *float64 // no season: NULL, as sidetrend.track() stores it
 		if period > 0 {
 			p = &period
 		}
+		var sl *float64 // one factor: NULL
+		if season != 0 && !math.IsNaN(season) {
+			sl = &season
+		}
 		b.Queue(`UPDATE sidetrend.trackers SET lambda = $2, auto_tune = auto_tune OR lambda IS NULL,
-			degree = $3, harmonics = $4, period = $5 WHERE id = $1`,
-			int32(t.ID), lambda, degree, harmonics, p)
+			degree = $3, harmonics = $4, period = $5, season_lambda = $6 WHERE id = $1`,
+			int32(t.ID), lambda, degree, harmonics, p, sl)
 		b.Queue(`UPDATE sidetrend.series SET lambda = NULL, rebuild = true WHERE tracker_id = $1`, int32(t.ID))
 		r.Applied = true
 	case toSeries:
@@ -589,20 +578,32 @@ func tuningArgs(t *Tracker, r *TuneResult, scope string, applied bool) []any {
 		ms := make([]map[string]any, len(r.Models))
 		for i, m := range r.Models {
 			ms[i] = map[string]any{"degree": m.Degree, "period": m.Period, "harmonics": m.Harmonics,
-				"lambda": nullable(m.Lambda), "rmse": nullable(m.RMSE), "n": m.N, "current": m.Current}
+				"lambda": nullable(m.Lambda), "season_lambda": nullable(m.SeasonLambda), "rmse": nullable(m.RMSE), "n": m.N, "current": m.Current}
 		}
 		models, _ = json.Marshal(ms)
 		if r.Best >= 0 {
 			bestDegree, bestHarmonics = &r.Models[r.Best].Degree, &r.Models[r.Best].Harmonics
 		}
 	}
-	var note *string
+	var note, atBound *string
 	if r.Note != "" {
 		note = &r.Note
 	}
+	if len(r.AtBound) > 0 {
+		s := strings.Join(r.AtBound, "; ")
+		atBound = &s
+	}
+	// A seasonal factor of 0 is "the same as lambda": NULL.
+	nz := func(x float64) *float64 {
+		if x == 0 {
+			return nil
+		}
+		return nullable(x)
+	}
 	return []any{int32(t.ID), scope, key, nullable(r.LambdaBefore), nullable(r.Lambda), nullable(r.MemoryBuckets),
 		nullable(r.RMSEBefore), nullable(r.RMSEAfter), r.N, int32(r.Series), r.Points, curveL, curveR,
-		int32(t.Spec.Degree), int32(t.Spec.Harmonics), models, bestDegree, bestHarmonics, note, applied}
+		int32(t.Spec.Degree), int32(t.Spec.Harmonics), models, bestDegree, bestHarmonics, note, applied,
+		nz(r.SeasonLambdaBefore), nz(r.SeasonLambda), atBound, optText(r.ModelBefore), optText(r.Model)}
 }
 
 func sortedIDs(ts map[int]*Tracker) []int {

@@ -88,6 +88,7 @@ func newApp() *cli.App {
 			statusCommand(),
 			plotCommand(),
 			forecastCommand(),
+			backtestCommand(),
 			demoCommand(),
 			{
 				Name:  "version",

@@ -47,8 +47,11 @@ func forecastCommand() *cli.Command {
 			"naming the series. Times are RFC 3339 (2026-03-01T09:30:00+01:00), or '2006-01-02 15:04:05' or\n" +
 			"'2006-01-02', which are wall-clock time in --tz. Rows are bucketed by --bucket in --tz, each\n" +
 			"series is fitted by discounted least squares, and the forecasts for the next --horizon buckets\n" +
-			"are printed. An empty bucket between two observed ones counts as zero or as a gap (--empty).",
-		Flags: []cli.Flag{
+			"are printed. An empty bucket between two observed ones counts as zero or as a gap (--empty).\n" +
+			"Model settings left out (--lambda, --season-lambda, and --harmonics with a --period) are chosen\n" +
+			"per series by one-step error; the degree is 1 unless given. A first or last bucket that the rows\n" +
+			"cover only in part is left out, with a note on stderr.",
+		Flags: append([]cli.Flag{
 			&cli.StringFlag{Name: "csv", Required: true, Usage: "CSV file with a header row; - reads standard input"},
 			&cli.StringFlag{Name: "time-col", Value: "time", Usage: "name of the time column"},
 			&cli.StringFlag{Name: "value-col", Value: "value", Usage: "name of the value column (not needed for --agg count)"},
@@ -58,37 +61,21 @@ func forecastCommand() *cli.Command {
 			&cli.StringFlag{Name: "agg", Value: "sum", Usage: "aggregate per bucket: sum, mean, min, max, last, count"},
 			&cli.StringFlag{Name: "empty", Usage: "an empty bucket between two observed ones: zero or gap (default zero for sum and count, gap otherwise)"},
 			&cli.IntFlag{Name: "degree", Value: 1, Usage: "polynomial trend degree, 0 to 3"},
-			&cli.Float64Flag{Name: "period", Usage: "seasonal period in buckets (7 for weekly in days); 0 for none"},
-			&cli.IntFlag{Name: "harmonics", Usage: "harmonic pairs for the season, 1 to 6, with --period"},
-			&cli.StringFlag{Name: "lambda", Usage: "forgetting factor in (0, 1]; left out, each series' own is chosen from the data by one-step error"},
-			&cli.IntFlag{Name: "burn-in", Usage: "points beyond the parameter count before a series gets forecasts"},
 			&cli.IntFlag{Name: "horizon", Value: 12, Usage: "buckets to forecast"},
 			&cli.StringFlag{Name: "format", Value: "table", Usage: "output: table (for reading), csv or json"},
-		},
+		}, modelCLIFlags()...),
 		Action: func(c *cli.Context) error {
 			o, err := forecastOptionsFrom(c)
 			if err != nil {
 				return err
 			}
-			name := c.String("csv")
-			var in io.Reader = os.Stdin
-			if name != "-" {
-				f, err := os.Open(name)
-				if err != nil {
-					return fmt.Errorf("--csv: %w", err)
-				}
-				defer f.Close()
-				in = f
-			} else {
-				name = "standard input"
-			}
-			series, err := readForecastCSV(in, name, o)
+			series, err := readCSVFlag(c, o)
 			if err != nil {
 				return err
 			}
 			var out []seriesForecast
 			for _, s := range series {
-				fc, err := forecastSeries(s, o)
+				fc, err := forecastSeries(s, o, c.App.ErrWriter)
 				var short *notReadyError
 				if errors.As(err, &short) {
 					fmt.Fprintln(c.App.ErrWriter, short.Error())
@@ -111,10 +98,26 @@ type forecastOptions struct {
 	cal                       calendar.Calendar
 	agg                       string
 	emptyZero                 bool
-	spec                      estimator.Spec
-	autoLambda                bool
+	model                     modelFlags
 	horizon                   int
 	format                    string
+}
+
+// readCSVFlag reads the file --csv names (- for standard input).
+func readCSVFlag(c *cli.Context, o forecastOptions) ([]*csvSeries, error) {
+	name := c.String("csv")
+	var in io.Reader = os.Stdin
+	if name != "-" {
+		f, err := os.Open(name)
+		if err != nil {
+			return nil, fmt.Errorf("--csv: %w", err)
+		}
+		defer f.Close()
+		in = f
+	} else {
+		name = "standard input"
+	}
+	return readForecastCSV(in, name, o)
 }
 
 func forecastOptionsFrom(c *cli.Context) (forecastOptions, error) {
@@ -150,25 +153,16 @@ func forecastOptionsFrom(c *cli.Context) (forecastOptions, error) {
 	if o.horizon < 1 || o.horizon > estimator.MaxHorizon {
 		return o, fmt.Errorf("--horizon %d is out of range: use 1 to %d buckets", o.horizon, estimator.MaxHorizon)
 	}
-	o.spec = estimator.Spec{Degree: c.Int("degree"), Period: c.Float64("period"), Harmonics: c.Int("harmonics"),
-		BurnIn: c.Int("burn-in"), Lambda: 0.95}
-	if o.spec.Period > 0 && !c.IsSet("harmonics") {
-		return o, fmt.Errorf("--period %v needs --harmonics: give 1 to %d harmonic pairs (more follow a sharper seasonal shape)",
-			o.spec.Period, min(estimator.MaxHarmonics, int(math.Floor(o.spec.Period/2))))
+	// The degree is 1 unless given; the harmonics (with a period) and the
+	// forgetting factors left out are chosen per series from its data
+	// (estimator.Choose), as lambda => NULL does in sidetrend.track.
+	var degree *int
+	if c.Command.Name == "forecast" {
+		d := c.Int("degree")
+		degree = &d
 	}
-	// Without --lambda each series' forgetting factor is chosen from its
-	// data, as lambda => NULL does in sidetrend.track.
-	o.autoLambda = !c.IsSet("lambda")
-	if !o.autoLambda {
-		l := c.String("lambda")
-		v, err := strconv.ParseFloat(strings.TrimSpace(l), 64)
-		if err != nil {
-			return o, fmt.Errorf("--lambda %q is not a number: give a forgetting factor such as 0.95, or leave --lambda out to choose it from the data", l)
-		}
-		o.spec.Lambda = v
-	}
-	if err := o.spec.Validate(); err != nil {
-		return o, fmt.Errorf("model flags: %w", err)
+	if o.model, err = modelFlagsFrom(c, degree); err != nil {
+		return o, err
 	}
 	return o, nil
 }
@@ -185,7 +179,8 @@ type bucketAgg struct {
 type csvSeries struct {
 	key     string
 	buckets map[int64]*bucketAgg
-	lo, hi  int64 // first and last bucket with rows
+	lo, hi  int64       // first and last bucket with rows
+	times   []time.Time // every row's time, to tell partly covered buckets
 }
 
 // readForecastCSV reads the file and folds its rows into buckets per series,
@@ -282,6 +277,7 @@ func readForecastCSV(in io.Reader, name string, o forecastOptions) ([]*csvSeries
 			bySeries[key] = s
 		}
 		s.lo, s.hi = min(s.lo, bucket), max(s.hi, bucket)
+		s.times = append(s.times, at)
 		b := s.buckets[bucket]
 		if b == nil {
 			b = &bucketAgg{min: v, max: v, last: v, lastAt: at}
@@ -338,12 +334,12 @@ func parseRowTime(s string, cal calendar.Calendar, loc *time.Location) (time.Tim
 		"(2026-03-01 09:30:00+01), or 2026-03-01 09:30:00 or 2026-03-01 for wall-clock time in --tz")
 }
 
-// values returns the series' bucket values from its first to its last
-// bucket with rows; an empty bucket in between is 0 or NaN (a gap).
-func (s *csvSeries) values(agg string, emptyZero bool) []float64 {
-	ys := make([]float64, s.hi-s.lo+1)
+// values returns the series' bucket values from bucket lo to hi; an empty
+// bucket in between is 0 or NaN (a gap).
+func (s *csvSeries) values(lo, hi int64, agg string, emptyZero bool) []float64 {
+	ys := make([]float64, hi-lo+1)
 	for i := range ys {
-		b := s.buckets[s.lo+int64(i)]
+		b := s.buckets[lo+int64(i)]
 		switch {
 		case b == nil && emptyZero:
 			ys[i] = 0
@@ -371,7 +367,8 @@ type seriesForecast struct {
 	key     string
 	lastIdx int64 // the newest bucket
 	buckets int   // buckets from the first to the newest
-	lambda  float64
+	model   string
+	chosen  bool // some setting was chosen from the data
 	fc      *estimator.Forecast
 }
 
@@ -390,42 +387,85 @@ func (e *notReadyError) Error() string {
 	return fmt.Sprintf("series %s: only %d points, needs %d; left out", displayKey(e.key), e.have, e.need)
 }
 
+// seriesValues returns a series' values with partly covered first and
+// last buckets left out (told on notes), transformed, and the first and
+// last bucket kept.
+func seriesValues(s *csvSeries, o forecastOptions, notes io.Writer) ([]float64, int64, int64, error) {
+	lo, hi, msgs := s.trimPartial(o.cal.Start)
+	for _, m := range msgs {
+		fmt.Fprintln(notes, m)
+	}
+	ys := s.values(lo, hi, o.agg, o.emptyZero)
+	err := o.model.transformIn(ys, func(i int) string { return o.cal.Start(lo + int64(i)).Format(time.RFC3339) })
+	if err != nil {
+		return nil, 0, 0, fmt.Errorf("series %s: %w", displayKey(s.key), err)
+	}
+	return ys, lo, hi, nil
+}
+
 // forecastSeries fits the model to one series and forecasts it.
-func forecastSeries(s *csvSeries, o forecastOptions) (seriesForecast, error) {
-	ys := s.values(o.agg, o.emptyZero)
-	spec := o.spec
-	need := spec.Params() + spec.BurnIn
+func forecastSeries(s *csvSeries, o forecastOptions, notes io.Writer) (seriesForecast, error) {
+	ys, _, hi, err := seriesValues(s, o, notes)
+	if err != nil {
+		return seriesForecast{}, err
+	}
 	var observed int64
 	for _, y := range ys {
 		if !math.IsNaN(y) {
 			observed++
 		}
 	}
+	// The fewest points any model the flags allow needs.
+	minSpec := estimator.Spec{Lambda: 1, BurnIn: o.model.burnIn}
+	if o.model.degree != nil {
+		minSpec.Degree = *o.model.degree
+	}
+	if h := o.model.harmonics; h != nil && *h > 0 {
+		minSpec.Harmonics, minSpec.Period = *h, o.model.period
+	}
+	need := minSpec.Params() + minSpec.BurnIn
 	if observed < int64(need) {
 		return seriesForecast{}, &notReadyError{key: s.key, have: observed, need: need}
 	}
-	if o.autoLambda {
-		res, err := estimator.SearchLambda(spec, [][]float64{ys}, estimator.SearchOptions{})
-		if errors.Is(err, estimator.ErrNoErrors) {
-			return seriesForecast{}, &notReadyError{key: s.key, have: observed, need: need + 1}
+	spec, ch, err := o.model.choose(ys)
+	if errors.Is(err, estimator.ErrNoErrors) {
+		return seriesForecast{}, &notReadyError{key: s.key, have: observed, need: need + 1}
+	}
+	if err != nil {
+		return seriesForecast{}, fmt.Errorf("series %s: choose the model: %w", displayKey(s.key), err)
+	}
+	if ch != nil {
+		for _, b := range ch.AtBound {
+			fmt.Fprintf(notes, "series %s: %s: the best setting may lie beyond it\n", displayKey(s.key), b)
 		}
-		if err != nil {
-			return seriesForecast{}, fmt.Errorf("series %s: choose lambda: %w", displayKey(s.key), err)
-		}
-		spec.Lambda = res.Lambda
 	}
 	st, err := estimator.Fit(spec, ys)
 	if err != nil {
 		return seriesForecast{}, fmt.Errorf("series %s: fit: %w", displayKey(s.key), err)
 	}
 	if !st.Ready() {
-		return seriesForecast{}, &notReadyError{key: s.key, have: st.Count(), need: need}
+		return seriesForecast{}, &notReadyError{key: s.key, have: st.Count(), need: spec.Params() + spec.BurnIn}
 	}
 	fc, err := st.Forecast(o.horizon)
 	if err != nil {
 		return seriesForecast{}, fmt.Errorf("series %s: forecast: %w", displayKey(s.key), err)
 	}
-	return seriesForecast{key: s.key, lastIdx: s.hi, buckets: len(ys), lambda: spec.Lambda, fc: fc}, nil
+	if o.model.transform == "log" {
+		// Forecasts and bounds back on the data's scale: exp of the log
+		// forecast is the median forecast; the bounds keep their
+		// probability. A sum of medians has no bound by this rule: the
+		// cumulative bounds are left out.
+		var cum float64
+		for i := range fc.Forecast {
+			for _, xs := range [][]float64{fc.Forecast, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95} {
+				xs[i] = math.Exp(xs[i])
+			}
+			cum += fc.Forecast[i]
+			fc.CumForecast[i] = cum
+			fc.CumLower95[i], fc.CumUpper95[i], fc.SE[i], fc.CumSE[i] = math.NaN(), math.NaN(), math.NaN(), math.NaN()
+		}
+	}
+	return seriesForecast{key: s.key, lastIdx: hi, buckets: len(ys), model: o.model.modelText(spec), chosen: ch != nil, fc: fc}, nil
 }
 
 // displayKey names a series in messages and the table.
@@ -535,12 +575,12 @@ func writeForecastTable(w io.Writer, o forecastOptions, out []seriesForecast) er
 			return strconv.FormatFloat(x, 'f', dec, 64)
 		}
 		chosen := ""
-		if o.autoLambda {
+		if sf.chosen {
 			chosen = " (chosen from the data)"
 		}
-		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, lambda %.4g%s, sigma %s\n",
+		fmt.Fprintf(w, "series %s: %d buckets of %s in %s up to %s, %s%s, sigma %s\n",
 			displayKey(sf.key), sf.buckets, o.cal.Width(), o.cal.Zone(),
-			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.lambda, chosen, num(fc.Sigma))
+			o.cal.Start(sf.lastIdx).Format(time.RFC3339), sf.model, chosen, num(fc.Sigma))
 		// The interval as a fan around the forecast, widest bounds outside;
 		// the running totals after a bar.
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)

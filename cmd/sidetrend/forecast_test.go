@@ -175,18 +175,17 @@ func TestForecastMatchesEstimator(t *testing.T) {
 		}
 	}
 
-	// Without --lambda, lambda is chosen per series exactly as SearchLambda
-	// does.
+	// Without --lambda, lambda is chosen per series exactly as
+	// estimator.Choose does with the degree fixed.
 	out, stderr, err := runForecast(t, "--csv", path, "--tz", "Europe/Berlin", "--horizon", "1", "--format", "csv")
 	if err != nil {
 		t.Fatalf("forecast without --lambda: %v\n%s", err, stderr)
 	}
-	res, err := estimator.SearchLambda(spec, [][]float64{want["a"]}, estimator.SearchOptions{})
+	res, err := estimator.Choose([][]float64{want["a"]}, estimator.ChooseOptions{Degrees: []int{spec.Degree}})
 	if err != nil {
 		t.Fatal(err)
 	}
-	auto := spec
-	auto.Lambda = res.Lambda
+	auto := res.Spec
 	st, err := estimator.Fit(auto, want["a"])
 	if err != nil {
 		t.Fatal(err)
@@ -197,7 +196,7 @@ func TestForecastMatchesEstimator(t *testing.T) {
 	}
 	recs := readCSVOutput(t, out)
 	if recs[1][0] != "a" || parseNum(t, recs[1][3]) != fc.Forecast[0] {
-		t.Errorf("lambda chosen from the data: row %v, estimator forecast %v (lambda %v)", recs[1], fc.Forecast[0], res.Lambda)
+		t.Errorf("lambda chosen from the data: row %v, estimator forecast %v (%v)", recs[1], fc.Forecast[0], res.Spec)
 	}
 }
 
@@ -332,7 +331,7 @@ func TestForecastBadInput(t *testing.T) {
 		{"bad lambda", good, []string{"--lambda", "high"}, []string{"--lambda", "0.95", "leave --lambda out"}},
 		{"lambda auto is gone", good, []string{"--lambda", "auto"}, []string{`--lambda "auto" is not a number`, "leave --lambda out"}},
 		{"lambda out of range", good, []string{"--lambda", "1.3"}, []string{"lambda 1.3", "(0, 1]"}},
-		{"period without harmonics", good, []string{"--period", "7"}, []string{"--harmonics", "1 to 3"}},
+		{"harmonics without period", good, []string{"--harmonics", "2"}, []string{"--harmonics 2 needs --period"}},
 		{"bad format", good, []string{"--format", "xml"}, []string{"--format", "table, csv or json"}},
 		{"bad horizon", good, []string{"--horizon", "0"}, []string{"--horizon", "1 to"}},
 	}

@@ -15,7 +15,7 @@ import (
 func tuneCommand() *cli.Command {
 	return &cli.Command{
 		Name:  "tune",
-		Usage: "choose the forgetting factor lambda from the one-step errors, and compare the model with a simpler and a richer one",
+		Usage: "choose the forgetting factors from one-step errors on buckets each forecast had not seen, and compare degrees and harmonics",
 		UsageText: "sidetrend tune [--tracker NAME] [--per-series] [--apply [--model]]\n\n" +
 			"Without --apply nothing changes but the stored results sidetrend.tune() reads.",
 		Flags: []cli.Flag{
@@ -74,16 +74,27 @@ func tuneCommand() *cli.Command {
 // comparison.
 func printTune(w io.Writer, res []pgsync.TuneResult) {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "tracker\tseries\tlambda now\tlambda\tmemory (buckets)\trmse now\trmse tuned\terrors\tapplied\t")
+	fmt.Fprintln(tw, "tracker\tseries\tlambda now\tseason now\tlambda\tseason\tmemory (buckets)\trmse now\trmse tuned\terrors\tapplied\t")
 	for _, r := range res {
 		key := fmt.Sprintf("(all %d)", r.Series)
 		if r.SeriesKey != nil {
 			key = *r.SeriesKey
 		}
-		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%d\t%s\t\n", r.Tracker, key, tuneNum(r.LambdaBefore, 4), tuneNum(r.Lambda, 4),
+		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%d\t%s\t\n", r.Tracker, key, tuneNum(r.LambdaBefore, 4),
+			seasonNum(r.SeasonLambdaBefore), tuneNum(r.Lambda, 4), seasonNum(r.SeasonLambda),
 			tuneNum(r.MemoryBuckets, 1), tuneNum(r.RMSEBefore, 4), tuneNum(r.RMSEAfter, 4), r.N, tuneYesNo(r.Applied))
 	}
 	tw.Flush()
+	fmt.Fprintln(w, "rmse now and rmse tuned: one-step errors over the same buckets (each series' first buckets, the warm-up, left out), every forecast made from the buckets before it only; season: the seasonal factor (= : the same as lambda)")
+	for _, r := range res {
+		for _, b := range r.AtBound {
+			key := ""
+			if r.SeriesKey != nil {
+				key = " series " + strconv.Quote(*r.SeriesKey)
+			}
+			fmt.Fprintf(w, "%s%s: %s; the best setting may lie beyond it\n", r.Tracker, key, b)
+		}
+	}
 	for _, r := range res {
 		if r.SeriesKey != nil {
 			continue
@@ -94,16 +105,16 @@ func printTune(w io.Writer, res []pgsync.TuneResult) {
 		if len(r.Models) == 0 {
 			continue
 		}
-		fmt.Fprintf(w, "\nmodels for %s, each at its own best lambda, on the same %d one-step errors:\n", r.Tracker, r.Models[0].N)
+		fmt.Fprintf(w, "\nmodels for %s, each at its own best factors, on the same %d one-step errors:\n", r.Tracker, r.Models[0].N)
 		mw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(mw, "\tdegree\tperiod\tharmonics\tlambda\trmse\t\t")
+		fmt.Fprintln(mw, "\tdegree\tperiod\tharmonics\tlambda\tseason\trmse\t\t")
 		for i, m := range r.Models {
 			mark, note := " ", ""
 			if i == r.Best {
 				mark = "*"
 			}
 			if m.Current {
-				note = "current"
+				note = "current degree and harmonics (rmse tuned)"
 			}
 			if m.Current && r.ModelSwitched {
 				note = "was current"
@@ -111,10 +122,11 @@ func printTune(w io.Writer, res []pgsync.TuneResult) {
 			if i == r.Best && r.ModelSwitched {
 				note = "now in use"
 			}
-			fmt.Fprintf(mw, "%s\t%d\t%s\t%d\t%s\t%s\t%s\t\n", mark, m.Degree, tuneNum(m.Period, 2), m.Harmonics, tuneNum(m.Lambda, 4), tuneNum(m.RMSE, 4), note)
+			fmt.Fprintf(mw, "%s\t%d\t%s\t%d\t%s\t%s\t%s\t%s\t\n", mark, m.Degree, tuneNum(m.Period, 2), m.Harmonics, tuneNum(m.Lambda, 4),
+				seasonNum(m.SeasonLambda), tuneNum(m.RMSE, 4), note)
 		}
 		mw.Flush()
-		if r.Best > 0 && !r.ModelSwitched {
+		if r.Best >= 0 && !r.Models[r.Best].Current && !r.ModelSwitched {
 			fmt.Fprintf(w, "the starred model has smaller one-step errors; `sidetrend tune --tracker %s --apply --model` switches to it\n", r.Tracker)
 		}
 	}
@@ -125,6 +137,14 @@ func tuneNum(x float64, prec int) string {
 		return "-"
 	}
 	return strconv.FormatFloat(x, 'f', prec, 64)
+}
+
+// seasonNum prints a seasonal factor; 0 is "the same as lambda".
+func seasonNum(x float64) string {
+	if x == 0 {
+		return "="
+	}
+	return tuneNum(x, 4)
 }
 
 func tuneYesNo(b bool) string {
