@@ -94,7 +94,14 @@ func (st *State) Forecast(h int) (*Forecast, error) {
 		for i := range scaled {
 			scaled[i] = x[i] / st.dhalf[i]
 		}
-		return math.Max(0, st.quadForm(scaled)-q)
+		w := st.quadForm(scaled) - q
+		if math.IsNaN(w) || math.IsInf(w, 0) {
+			// Inf - Inf after a long gap, where F^-1 is huge: use the
+			// bound x^T D^-1/2 F^-1 D^-1/2 x <= q / min(lambda) instead.
+			lmin := math.Min(st.spec.Lambda, st.spec.SeasonLambda)
+			w = (1/lmin - 1) * q
+		}
+		return math.Max(0, w)
 	}
 	var cumY, evol, evolCum float64
 	for l := 1; l <= h; l++ {

@@ -251,6 +251,22 @@ func checkFinite(t *testing.T, st *State) {
 		return
 	}
 	bad("Sigma", fc.Sigma)
+	// An interval may be infinite, never NaN: after a gap long enough that
+	// the two factors' discounts differ by more than a float64 holds, the
+	// variance factor x^T F^-1 x overflows (the state knows nothing of the
+	// future any more), and the bounds are then +-Inf (stored as NULL).
+	noNaN := func(what string, xs ...float64) {
+		for i, x := range xs {
+			if math.IsNaN(x) || math.IsInf(x, -1) {
+				t.Fatalf("Ready state (T=%v, p=%d, S=%v, rcond=%v): %s[%d] = %v", st.Weight(), st.Params(), st.RSS(), st.RCond(), what, i, x)
+			}
+		}
+	}
+	if math.IsInf(fc.SE[0], 1) {
+		noNaN("SE", fc.SE...)
+		noNaN("CumSE", fc.CumSE...)
+		return
+	}
 	bad("SE", fc.SE...)
 	bad("CumSE", fc.CumSE...)
 	if st.Spec().Degree >= 1 {

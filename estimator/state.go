@@ -535,10 +535,14 @@ func (st *State) Sigma() float64 {
 	if !(st.te > 0) {
 		return math.NaN()
 	}
-	// sqrt(S) / sqrt(Te): S near the largest float64 over a small Te
-	// overflowed to +Inf where the square roots stay finite (found by the
-	// fuzzer for the least-squares form: S = 9.3e306, T - p = 0.0085).
-	return math.Sqrt(st.s) / math.Sqrt(st.te)
+	v := math.Sqrt(st.s / st.te)
+	if math.IsInf(v, 1) {
+		// S near the largest float64 over a small Te overflows where the
+		// square roots stay finite (found by the fuzzer for the
+		// least-squares form: S = 9.3e306, T - p = 0.0085).
+		v = math.Sqrt(st.s) / math.Sqrt(st.te)
+	}
+	return v
 }
 
 // DF is the effective number of one-step errors behind Sigma,

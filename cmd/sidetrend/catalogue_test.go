@@ -159,7 +159,7 @@ func TestBadInputCatalogue(t *testing.T) {
 		{"flag", "track --lambda high", cli("track", "--db", url, "--table", "public.sales", "--time", "sold_at", "--value", "amount", "--lambda", "high"), []string{`--lambda "high" is not a number`}},
 		{"flag", "forecast --bucket fortnight", csvFile(good, "--bucket", "1 fortnight"), []string{"--bucket"}},
 		{"flag", "forecast --horizon 0", csvFile(good, "--horizon", "0"), []string{"--horizon 0 is out of range"}},
-		{"flag", "forecast --period without --harmonics", csvFile(good, "--period", "7"), []string{"--harmonics"}},
+		{"flag", "forecast --harmonics without --period", csvFile(good, "--harmonics", "2"), []string{"--harmonics 2 needs --period"}},
 		{"flag", "status --format yaml", cli("status", "--db", url, "--format", "yaml"), []string{"use table or json"}},
 		{"flag", "status --limit 0", cli("status", "--db", url, "--limit", "0"), []string{"--limit 0", "1 or more"}},
 		{"flag", "rebuild --series without --tracker", cli("rebuild", "--db", url, "--series", "north"), []string{"--series needs --tracker"}},
