@@ -41,75 +41,9 @@ ALTER TABLE sidetrend.trackers ADD COLUMN IF NOT EXISTS settings_version int NOT
 COMMENT ON COLUMN sidetrend.trackers.settings_version
     IS 'Counts the changes made by sidetrend.alter_tracker; the sidecar reloads its copy of the settings when it moves.';
 
--- check_settings raises, with what to use instead, when a tracker's
--- settings are not usable (the checks of track, for alter_tracker).
--- +goose StatementBegin
-CREATE OR REPLACE FUNCTION sidetrend.check_settings(bucket interval, tz text, degree int, period float8, harmonics int,
-                                                    lambda float8, horizon int, burn_in int, history_buckets int, span interval)
-RETURNS void
-LANGUAGE plpgsql STABLE SET search_path = pg_catalog, pg_temp AS $fn$
-BEGIN
-    PERFORM sidetrend.bucket_check(check_settings.bucket);
-    IF check_settings.bucket > interval '100 years' THEN
-        RAISE EXCEPTION 'bucket width ''%'' is longer than 100 years', check_settings.bucket
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a bucket such as ''1 day'', ''1 month'' or ''1 year''.';
-    END IF;
-    PERFORM sidetrend.zone_check(check_settings.tz);
-    IF check_settings.degree IS NULL OR check_settings.degree < 0 OR check_settings.degree > 3 THEN
-        RAISE EXCEPTION 'degree % is not supported', check_settings.degree
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a polynomial degree from 0 to 3 (1 is a local linear trend).';
-    END IF;
-    IF check_settings.lambda IS NOT NULL AND NOT (check_settings.lambda > 0 AND check_settings.lambda <= 1) THEN
-        RAISE EXCEPTION 'lambda % is outside (0, 1]', check_settings.lambda
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a forgetting factor such as 0.95 (1 means no forgetting), or lambda_auto => true to let the sidecar choose it.';
-    END IF;
-    IF check_settings.period IS NULL AND coalesce(check_settings.harmonics, 0) <> 0 THEN
-        RAISE EXCEPTION '% harmonics need a period', check_settings.harmonics
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass period => the seasonal period in buckets (7 for weekly in days), or harmonics => 0.';
-    END IF;
-    IF check_settings.period IS NOT NULL THEN
-        -- In Postgres NaN is greater than every number: test it by name.
-        IF check_settings.period = 'NaN'::float8 OR check_settings.period = 'Infinity'::float8 THEN
-            RAISE EXCEPTION 'period % is not a number of buckets', check_settings.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass period => the seasonal period in buckets, such as 7 or 365.25, or period => 0 for no season.';
-        END IF;
-        IF NOT (check_settings.period >= 2) THEN
-            RAISE EXCEPTION 'period % is too short', check_settings.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'A seasonal period must be at least 2 buckets; period => 0 removes the season.';
-        END IF;
-        IF check_settings.period > 100000 THEN
-            RAISE EXCEPTION 'period % is longer than 100000 buckets', check_settings.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a wider bucket, or a period such as 7, 24 or 365.25 buckets.';
-        END IF;
-        IF check_settings.harmonics IS NULL OR check_settings.harmonics < 1 OR check_settings.harmonics > 6 THEN
-            RAISE EXCEPTION '% harmonics are not supported with a period', check_settings.harmonics
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Use harmonics => 1 to 6.';
-        END IF;
-        IF check_settings.harmonics > check_settings.period / 2 THEN
-            RAISE EXCEPTION '% harmonics are too many for period %', check_settings.harmonics, check_settings.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = format('Use at most %s harmonics (period/2).', floor(check_settings.period / 2));
-        END IF;
-    END IF;
-    IF check_settings.horizon IS NULL OR check_settings.horizon < 1 OR check_settings.horizon > 1000 THEN
-        RAISE EXCEPTION 'horizon % is out of range', check_settings.horizon
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a horizon of 1 to 1000 buckets (the live endpoint serves longer ones).';
-    END IF;
-    IF check_settings.burn_in IS NULL OR check_settings.burn_in < 0 OR check_settings.burn_in > 100000 THEN
-        RAISE EXCEPTION 'burn_in % is out of range', check_settings.burn_in
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use burn_in => 0 to 100000 points.';
-    END IF;
-    IF check_settings.history_buckets IS NULL OR check_settings.history_buckets < 0 OR check_settings.history_buckets > 100000 THEN
-        RAISE EXCEPTION 'history_buckets % is out of range', check_settings.history_buckets
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use history_buckets => 0 (keep no served forecasts) to 100000 buckets.';
-    END IF;
-    IF check_settings.span IS NULL OR check_settings.span < check_settings.bucket OR check_settings.span > interval '10000 years' THEN
-        RAISE EXCEPTION 'span ''%'' is out of range', check_settings.span
-            USING ERRCODE = 'invalid_parameter_value',
-                  HINT = 'Use a span of at least one bucket and at most 10000 years (the whole calendar): rows further than the span from now are rejected.';
-    END IF;
-END
-$fn$;
--- +goose StatementEnd
+-- (check_settings, the checks of track() that alter_tracker repeats, is
+-- defined in 00007.)
+
 
 -- _alter_tracker_as changes tracker name's settings for caller (see 2.
 -- above). An argument left NULL keeps its setting; period => 0 removes the
@@ -511,6 +445,5 @@ $grants$;
 -- +goose StatementEnd
 DROP FUNCTION IF EXISTS sidetrend.alter_tracker(text, int, int, float8, int, float8, boolean, int, int, interval, text, interval);
 DROP FUNCTION IF EXISTS sidetrend._alter_tracker_as(name, text, int, int, float8, int, float8, boolean, int, int, interval, text, interval);
-DROP FUNCTION IF EXISTS sidetrend.check_settings(interval, text, int, float8, int, float8, int, int, int, interval);
 ALTER TABLE sidetrend.trackers DROP COLUMN IF EXISTS settings_version;
 ALTER TABLE sidetrend.series DROP COLUMN IF EXISTS failed, DROP COLUMN IF EXISTS error_at;
