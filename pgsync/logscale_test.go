@@ -218,3 +218,102 @@ func TestLogScaleSettings(t *testing.T) {
 		t.Errorf("after the switch: transform %q, forecast %v, want log and %v", transform, f, math.Exp(want.Forecast[2]))
 	}
 }
+
+// TestComponents: sidetrend.components against the estimator's theta on
+// the log AirPassengers tracker (degree 1, 3 harmonics of 12): level and
+// slope are theta_1 and theta_2, and the effect at phase k is the seasonal
+// part of f(j)^T theta (estimator.Spec.Regressors) at j = -((N - k) mod 12),
+// N the newest bucket. At N's own phase level + effect is the fit at N.
+// A tracker without a season has one row, phase and effect NULL.
+func TestComponents(t *testing.T) {
+	t.Parallel()
+	pool, _ := newDB(t)
+	ctx := context.Background()
+	ys := airPassengers(t)
+	exec(t, pool, `CREATE TABLE air (month date, passengers float8)`)
+	exec(t, pool, `INSERT INTO air SELECT date '1949-01-01' + (i - 1) * interval '1 month', v
+		FROM unnest($1::float8[]) WITH ORDINALITY AS u(v, i)`, ys)
+	exec(t, pool, `SELECT sidetrend.track('air', 'month', 'passengers', bucket => '1 month', agg => 'sum',
+		degree => 1, period => 12, harmonics => 3, lambda => 0.95, horizon => 12, transform => 'log')`)
+	exec(t, pool, `SELECT sidetrend.track('air', 'month', 'passengers', bucket => '1 month', agg => 'sum',
+		degree => 1, lambda => 0.9, horizon => 2, name => 'plain')`)
+	if err := NewSyncer(pool, nil).CatchUp(ctx); err != nil {
+		t.Fatal(err)
+	}
+	logs := make([]float64, len(ys))
+	for i, y := range ys {
+		logs[i] = math.Log(y)
+	}
+	st, err := estimator.Fit(logSpec, logs)
+	if err != nil {
+		t.Fatal(err)
+	}
+	theta, err := st.Theta()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var newest int64
+	if err := pool.QueryRow(ctx, `SELECT s.folded_through FROM sidetrend.series s JOIN sidetrend.trackers t ON t.id = s.tracker_id
+		WHERE t.name = 'air'`).Scan(&newest); err != nil {
+		t.Fatal(err)
+	}
+	rows, err := pool.Query(ctx, `SELECT phase, level, slope, effect, scale, last_start = as_of
+		FROM sidetrend.components WHERE tracker = 'air' ORDER BY phase`)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer rows.Close()
+	const tol = 1e-12 // theta stored as float8; the SQL sums its own sines and cosines
+	f := make([]float64, logSpec.Params())
+	n := 0
+	for rows.Next() {
+		var phase int
+		var level, slope, effect float64
+		var scale string
+		var atNewest bool
+		if err := rows.Scan(&phase, &level, &slope, &effect, &scale, &atNewest); err != nil {
+			t.Fatal(err)
+		}
+		back := ((newest-int64(phase))%12 + 12) % 12
+		logSpec.Regressors(-float64(back), f)
+		var want float64
+		for i := logSpec.Degree + 1; i < len(f); i++ {
+			want += f[i] * theta[i]
+		}
+		if !scalar.EqualWithinAbsOrRel(level, theta[0], 0, tol) || !scalar.EqualWithinAbsOrRel(slope, theta[1], 0, tol) {
+			t.Errorf("phase %d: level %v slope %v, want theta %v %v", phase, level, slope, theta[0], theta[1])
+		}
+		if !scalar.EqualWithinAbsOrRel(effect, want, 1e-14, tol) {
+			t.Errorf("phase %d: effect %v, want %v (seasonal part of f(-%d)^T theta)", phase, effect, want, back)
+		}
+		if scale != "log" || atNewest != (back == 0) {
+			t.Errorf("phase %d: scale %q, last_start = as_of %v; want log and %v", phase, scale, atNewest, back == 0)
+		}
+		if back == 0 {
+			// level + effect at N's phase is the fit at N, f(0)^T theta.
+			logSpec.Regressors(0, f)
+			var fit float64
+			for i := range f {
+				fit += f[i] * theta[i]
+			}
+			if !scalar.EqualWithinAbsOrRel(level+effect, fit, 0, tol) {
+				t.Errorf("level + effect at the newest bucket's phase = %v, want the fit %v", level+effect, fit)
+			}
+		}
+		n++
+	}
+	if err := rows.Err(); err != nil {
+		t.Fatal(err)
+	}
+	if n != 12 {
+		t.Fatalf("%d phases, want 12", n)
+	}
+	var plain int
+	if err := pool.QueryRow(ctx, `SELECT count(*) FROM sidetrend.components WHERE tracker = 'plain' AND phase IS NULL AND effect IS NULL
+		AND scale = 'none' AND level IS NOT NULL`).Scan(&plain); err != nil {
+		t.Fatal(err)
+	}
+	if plain != 1 {
+		t.Errorf("%d rows for the tracker without a season, want 1 with phase and effect NULL", plain)
+	}
+}

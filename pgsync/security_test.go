@@ -541,7 +541,7 @@ func TestTrackerAccess(t *testing.T) {
 		t.Fatal(err)
 	}
 	// The reader sees the trackers whose table it may read, in every view.
-	views := []string{"forecasts", "slopes", "series_status", "tracker_settings", "actuals", "accuracy", "forecast_history"}
+	views := []string{"forecasts", "slopes", "series_status", "tracker_settings", "actuals", "accuracy", "forecast_history", "components", "accuracy_by_horizon", "rejected_rows"}
 	for _, v := range views {
 		var trackers []string
 		rows, err := rita.Query(ctx, `SELECT DISTINCT tracker FROM sidetrend.`+v+` ORDER BY 1`)
