@@ -101,9 +101,9 @@ func TestLogScaleForecasts(t *testing.T) {
 	var cum float64
 	for rows.Next() {
 		var h int
-		var f, lo80, hi80, lo95, hi95, cf float64
+		var f, lower80, upper80, lower95, upper95, cf float64
 		var cumNull bool
-		if err := rows.Scan(&h, &f, &lo80, &hi80, &lo95, &hi95, &cf, &cumNull); err != nil {
+		if err := rows.Scan(&h, &f, &lower80, &upper80, &lower95, &upper95, &cf, &cumNull); err != nil {
 			t.Fatal(err)
 		}
 		i := h - 1
@@ -114,10 +114,10 @@ func TestLogScaleForecasts(t *testing.T) {
 			got, want float64
 		}{
 			{"forecast", f, math.Exp(lf)},
-			{"lower80", lo80, math.Exp(lf - want.T80*se)},
-			{"upper80", hi80, math.Exp(lf + want.T80*se)},
-			{"lower95", lo95, math.Exp(lf - want.T95*se)},
-			{"upper95", hi95, math.Exp(lf + want.T95*se)},
+			{"lower80", lower80, math.Exp(lf - want.T80*se)},
+			{"upper80", upper80, math.Exp(lf + want.T80*se)},
+			{"lower95", lower95, math.Exp(lf - want.T95*se)},
+			{"upper95", upper95, math.Exp(lf + want.T95*se)},
 			{"cum_forecast", cf, cum},
 		} {
 			if !scalar.EqualWithinAbsOrRel(c.got, c.want, 0, tol) {
