@@ -1191,7 +1191,7 @@ func (s *Syncer) newWork(id seriesID, r storedSeries, minTouched int64) *seriesW
 	// Surprises are reported for buckets folded for the first time;
 	// a replay moves the slope direction but announces nothing old,
 	// and a series' first fold (a backfill) announces no history.
-	w.watch = &SurpriseWatch{TrackerID: id.tracker, SeriesKey: id.key, After: math.MaxInt64}
+	w.watch = &SurpriseWatch{TrackerID: id.tracker, SeriesKey: id.key, After: math.MaxInt64, Log: w.tracker.logScale()}
 	if w.hasFold {
 		w.watch.After = w.folded
 		if r.lastDir != nil && !w.rebuild {
@@ -1369,9 +1369,13 @@ func (s *Syncer) foldPoints(w *seriesWork, now time.Time, out *seriesRows) (bool
 				}
 			}
 		}
-		step, err := w.state.Observe(y)
+		fy, err := t.fitValue(y)
+		var step estimator.Step
 		if err == nil {
-			w.watch.Observed(p.bucket, y, step, w.state)
+			step, err = w.state.Observe(fy)
+		}
+		if err == nil {
+			w.watch.Observed(p.bucket, fy, step, w.state)
 		}
 		if err != nil {
 			msg := fmt.Sprintf("bucket %d: %v", p.bucket, err)
@@ -1429,10 +1433,31 @@ func (w *seriesWork) unchangedBy(vals []point, pendingDue *time.Time) bool {
 	return len(vals) == 0 && !w.rebuild && pendingDue != nil && w.oldPendingDue != nil && pendingDue.Equal(*w.oldPendingDue)
 }
 
+// errNotPositive is what a log tracker says of a bucket value it cannot
+// fold: the bucket is skipped like a gap and the series' last_error names it.
+var errNotPositive = errors.New("value is not positive (log scale): not folded, skipped like a gap")
+
+// logScale reports whether the tracker fits the logarithms of its values.
+func (t *Tracker) logScale() bool { return t.Transform == "log" }
+
+// fitValue maps a bucket value to the scale the state is fitted on: the
+// value itself, or its natural logarithm for a log tracker, which has none
+// for a value that is not positive (errNotPositive).
+func (t *Tracker) fitValue(y float64) (float64, error) {
+	if !t.logScale() {
+		return y, nil
+	}
+	if !(y > 0) {
+		return 0, fmt.Errorf("%w (the bucket's value is %v)", errNotPositive, y)
+	}
+	return math.Log(y), nil
+}
+
 // fillGap advances over buckets without rows: zeros when the tracker says
-// empty buckets mean zero, a skip (no information) otherwise.
+// empty buckets mean zero, a skip (no information) otherwise. On the log
+// scale an empty bucket is always a gap: 0 has no logarithm.
 func (s *Syncer) fillGap(w *seriesWork, from, gap int64) error {
-	if w.tracker.Empty == "zero" {
+	if w.tracker.Empty == "zero" && !w.tracker.logScale() {
 		for i := int64(0); i < gap; i++ {
 			step, err := w.state.Observe(0)
 			if err != nil {

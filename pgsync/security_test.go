@@ -505,8 +505,10 @@ func TestTrackerAccess(t *testing.T) {
 	// Calling the function behind track() with another role's name.
 	_, err := m.Exec(ctx, `SELECT sidetrend._untrack_as($1, 'sales')`, e.roles["wendy"])
 	wantSQLState(t, "untrack in another role's name", err, "42501", "may not act as role")
-	_, err = m.Exec(ctx, `SELECT sidetrend._alter_tracker_as($1, 'sales', 3, NULL, NULL, NULL, NULL, false, NULL, NULL, NULL, NULL, NULL)`, e.roles["wendy"])
+	_, err = m.Exec(ctx, `SELECT sidetrend._alter_tracker_as($1, 'sales', 3, NULL, NULL, NULL, NULL, false, NULL, NULL, NULL, NULL, NULL, NULL)`, e.roles["wendy"])
 	wantSQLState(t, "alter in another role's name", err, "42501", "may not act as role")
+	_, err = m.Exec(ctx, `SELECT sidetrend._track_as($1, 'public.sales', 'at', 'v', '{}', '1 day', 'sum', 1, NULL, 0, 0.95, 12, 'x', NULL, 'UTC', 0, NULL, 'log')`, e.roles["wendy"])
+	wantSQLState(t, "track in another role's name", err, "42501", "may not act as role")
 	// Its owner may (and a member of sidetrend_admin, below).
 	if _, err := w.Exec(ctx, `SELECT sidetrend.alter_tracker('sales', horizon => 3)`); err != nil {
 		t.Errorf("the owner alters its tracker: %v", err)
@@ -539,7 +541,7 @@ func TestTrackerAccess(t *testing.T) {
 		t.Fatal(err)
 	}
 	// The reader sees the trackers whose table it may read, in every view.
-	views := []string{"forecasts", "slopes", "series_status", "tracker_settings", "actuals", "accuracy", "forecast_history"}
+	views := []string{"forecasts", "slopes", "series_status", "tracker_settings", "actuals", "accuracy", "forecast_history", "components", "accuracy_by_horizon", "rejected_rows"}
 	for _, v := range views {
 		var trackers []string
 		rows, err := rita.Query(ctx, `SELECT DISTINCT tracker FROM sidetrend.`+v+` ORDER BY 1`)

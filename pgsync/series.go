@@ -111,6 +111,24 @@ func LoadSeries(ctx context.Context, q querier, tracker, key string) (*SeriesDat
 	return d, rows.Err()
 }
 
+// FitValues returns bucket values on the scale the tracker's states are
+// fitted on: for a log tracker a copy holding their natural logarithms, NaN
+// (a gap) for a value that is not positive, as the drain skips it; ys
+// itself otherwise.
+func (t *Tracker) FitValues(ys []float64) []float64 {
+	if !t.logScale() {
+		return ys
+	}
+	out := make([]float64, len(ys))
+	for i, y := range ys {
+		out[i] = math.NaN()
+		if y > 0 {
+			out[i] = math.Log(y)
+		}
+	}
+	return out
+}
+
 // WithoutPartialStart returns Values without a first bucket that the
 // source covers only in part: one with fewer than half the rows of the
 // median bucket with rows (a meter whose first day holds 11 of 24 hourly

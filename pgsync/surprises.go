@@ -85,6 +85,19 @@ type SurpriseWatch struct {
 	After int64
 	// Events are the surprises found, in bucket order.
 	Events []Surprise
+	// Log: the state is fitted on the logarithms of the values (a tracker
+	// with transform log). Observed then gets log values and steps, and its
+	// events carry the actual, forecast and bounds transformed back (exp);
+	// Z stays the standardised error on the log scale.
+	Log bool
+}
+
+// back maps a number on the fitting scale to the value scale.
+func (w *SurpriseWatch) back(x float64) float64 {
+	if w.Log {
+		return math.Exp(x)
+	}
+	return x
 }
 
 // Observed is called after st.Observe(y) returned step for the given bucket.
@@ -92,7 +105,7 @@ func (w *SurpriseWatch) Observed(bucket int64, y float64, step estimator.Step, s
 	report := bucket > w.After
 	if report && step.Scored && !math.IsNaN(step.Lower95) && !step.In95 {
 		w.Events = append(w.Events, Surprise{TrackerID: w.TrackerID, SeriesKey: w.SeriesKey, Bucket: bucket,
-			Kind: SurpriseOutside95, Actual: y, Forecast: step.Forecast, Lower95: step.Lower95, Upper95: step.Upper95,
+			Kind: SurpriseOutside95, Actual: w.back(y), Forecast: w.back(step.Forecast), Lower95: w.back(step.Lower95), Upper95: w.back(step.Upper95),
 			Z: step.Err / step.SE, Slope: math.NaN(), SlopeT: math.NaN()})
 	}
 	sl, err := st.Slope()
@@ -103,10 +116,10 @@ func (w *SurpriseWatch) Observed(bucket int64, y float64, step estimator.Step, s
 	w.LastDirection = dir
 	if turned && report {
 		ev := Surprise{TrackerID: w.TrackerID, SeriesKey: w.SeriesKey, Bucket: bucket, Kind: SurpriseSlopeTurn,
-			Actual: y, Forecast: math.NaN(), Lower95: math.NaN(), Upper95: math.NaN(), Z: sl.T(),
+			Actual: w.back(y), Forecast: math.NaN(), Lower95: math.NaN(), Upper95: math.NaN(), Z: sl.T(),
 			Slope: sl.Slope, SlopeT: sl.T(), Direction: dir}
 		if step.Scored {
-			ev.Forecast, ev.Lower95, ev.Upper95 = step.Forecast, step.Lower95, step.Upper95
+			ev.Forecast, ev.Lower95, ev.Upper95 = w.back(step.Forecast), w.back(step.Lower95), w.back(step.Upper95)
 		}
 		w.Events = append(w.Events, ev)
 	}

@@ -32,6 +32,9 @@ type Tracker struct {
 	Backfilled bool
 	Status     string
 	Version    int // settings_version: moves with every sidetrend.alter_tracker
+	// Transform is "none" or "log": a log tracker's state is fitted on the
+	// logarithms of its bucket values (see Tracker.fitValue).
+	Transform string
 
 	// cal numbers the tracker's buckets in Go, the twin of the SQL bucket
 	// functions (package calendar); calErr says why it could not be built
@@ -60,7 +63,7 @@ func (t *Tracker) buildCalendar() {
 const trackersSQL = `
 SELECT id, name, source_name, bucket::text, tz, agg, empty, degree, coalesce(period, 0), harmonics,
        coalesce(lambda, 0.95), lambda IS NULL, burn_in, horizon, history_buckets, backfilled, status, settings_version,
-       coalesce(season_lambda, 0)
+       coalesce(season_lambda, 0), transform
 FROM sidetrend.trackers ORDER BY id`
 
 // LoadTrackers reads every tracker.
@@ -74,7 +77,7 @@ func LoadTrackers(ctx context.Context, q querier) (map[int]*Tracker, error) {
 		t := &Tracker{}
 		if err := rows.Scan(&t.ID, &t.Name, &t.Source, &t.Bucket, &t.TZ, &t.Agg, &t.Empty,
 			&t.Spec.Degree, &t.Spec.Period, &t.Spec.Harmonics, &t.Spec.Lambda, &t.LambdaAuto,
-			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status, &t.Version, &t.Spec.SeasonLambda); err != nil {
+			&t.Spec.BurnIn, &t.Horizon, &t.History, &t.Backfilled, &t.Status, &t.Version, &t.Spec.SeasonLambda, &t.Transform); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("load trackers: %w", err)
 		}
@@ -115,6 +118,7 @@ type TrackOptions struct {
 	Empty     *string
 	TZ        *string
 	BurnIn    *int
+	Transform *string // "none" or "log"
 }
 
 // Track calls sidetrend.track() with named arguments and returns the new
@@ -162,6 +166,9 @@ func Track(ctx context.Context, pool *pgxpool.Pool, o TrackOptions) (int, error)
 	}
 	if o.BurnIn != nil {
 		add("burn_in", *o.BurnIn, "int")
+	}
+	if o.Transform != nil {
+		add("transform", *o.Transform, "text")
 	}
 	sql += ")"
 	var id int
@@ -220,6 +227,7 @@ type AlterOptions struct {
 	Span       *string // interval text
 	TZ         *string
 	Bucket     *string // interval text
+	Transform  *string // "none" or "log"
 }
 
 // AlterTracker calls sidetrend.alter_tracker() with named arguments and
@@ -263,6 +271,9 @@ func AlterTracker(ctx context.Context, pool *pgxpool.Pool, name string, o AlterO
 	}
 	if o.Bucket != nil {
 		add("bucket", *o.Bucket, "interval")
+	}
+	if o.Transform != nil {
+		add("transform", *o.Transform, "text")
 	}
 	sql += ")"
 	var msg string

@@ -295,7 +295,7 @@ func tuneTracker(ctx context.Context, pool *pgxpool.Pool, t *Tracker, perSeries 
 	all := make([][]float64, len(data))
 	specs := make([]estimator.Spec, len(data))
 	for i, d := range data {
-		all[i], specs[i] = d.WithoutPartialStart(), d.Spec
+		all[i], specs[i] = t.FitValues(d.WithoutPartialStart()), d.Spec
 	}
 	grid := estimator.ChoiceGrid()
 	if opt != (estimator.SearchOptions{}) {

@@ -21,8 +21,10 @@ const (
 	intNErrors
 	intOff // the series' part of the flat forecast arrays: [off+1 : off+h]
 	intH
-	intIssue // 1: the forecast is recorded in the history
-	intPrune // 1: older history of the series may be due for deletion
+	intIssue     // 1: the forecast is recorded in the history
+	intPrune     // 1: older history of the series may be due for deletion
+	intSeasonOff // the series' part of the flat season array: [off+1 : off+n]
+	intSeasonN
 	intStride
 )
 
@@ -66,10 +68,11 @@ var writeSeriesSQL = func() string {
 	fl := func(k int) string {
 		return fmt.Sprintf("nullif(($9::float8[])[r.i * %d + %d], 'NaN')", floatStride, k-floatStride+1)
 	}
-	slice := func(param int) string {
+	sliceOf := func(param, n, off int) string {
 		return fmt.Sprintf("CASE WHEN %[2]s > 0 THEN array_replace(($%[1]d::float8[])[%[3]s + 1 : %[3]s + %[2]s], 'NaN', NULL) END",
-			param, in(intH), in(intOff))
+			param, in(n), in(off))
 	}
+	slice := func(param int) string { return sliceOf(param, intH, intOff) }
 	return `
 WITH q AS (
     SELECT r.tid, r.key, r.state, r.ready, r.pending_due, r.last_error, r.last_direction,
@@ -83,6 +86,7 @@ WITH q AS (
            ` + slice(11) + ` AS se,
            ` + slice(12) + ` AS cum_forecast,
            ` + slice(13) + ` AS cum_se,
+           ` + sliceOf(14, intSeasonN, intSeasonOff) + ` AS season,
            ` + fl(floatLambda) + ` AS lambda, ` + fl(floatLevel) + ` AS level,
            ` + fl(floatSlope) + ` AS slope, ` + fl(floatSlopeSE) + ` AS slope_se,
            ` + fl(floatSigma) + ` AS sigma, ` + fl(floatMAE) + ` AS mae,
@@ -96,7 +100,7 @@ WITH q AS (
     UPDATE sidetrend.series s SET
         folded_through = q.folded, first_bucket = q.first, points = q.points, state = q.state,
         ready = q.ready, rebuild = false, pending_due = q.pending_due, updated_at = now(),
-        lambda = q.lambda, forecast = q.forecast, se = q.se, cum_forecast = q.cum_forecast, cum_se = q.cum_se,
+        lambda = q.lambda, season = q.season, forecast = q.forecast, se = q.se, cum_forecast = q.cum_forecast, cum_se = q.cum_se,
         t80 = q.t80, t95 = q.t95, level = q.level, slope = q.slope, slope_se = q.slope_se,
         sigma = q.sigma, n_errors = q.n_errors, mae = q.mae, rmse = q.rmse, mape = q.mape,
         bias = q.bias, coverage80 = q.cov80, coverage95 = q.cov95,
@@ -131,6 +135,9 @@ type seriesRows struct {
 	// forecast, se, cum_forecast, cum_se of every series, one after another (the
 	// views form the interval bounds).
 	fc [4][]float64
+	// season: the seasonal coefficients of every seasonal series, one
+	// after another (seasonCoefficients).
+	season []float64
 }
 
 // newSeriesRows returns columns with room for n series of horizon h: the
@@ -154,7 +161,7 @@ func (r *seriesRows) len() int { return len(r.tid) }
 // args are writeSeriesSQL's parameters.
 func (r *seriesRows) args() []any {
 	return []any{r.tid, r.key, r.state, r.ready, r.pendingDue, r.lastErr, r.lastDir,
-		r.ints, r.floats, r.fc[0], r.fc[1], r.fc[2], r.fc[3]}
+		r.ints, r.floats, r.fc[0], r.fc[1], r.fc[2], r.fc[3], r.season}
 }
 
 // issue marks the forecast of the row added last for the history; prune
@@ -212,7 +219,16 @@ func (r *seriesRows) add(w *seriesWork, st *estimator.State, pendingDue *time.Ti
 		floats[floatMAE], floats[floatRMSE], floats[floatMAPE], floats[floatBias] = es.MAE, es.RMSE, es.MAPE, es.Bias
 		floats[floatCov80], floats[floatCov95] = es.Cov80, es.Cov95
 	}
+	ints[intSeasonOff] = int64(len(r.season))
+	if ready && st.Spec().Harmonics > 0 {
+		n := len(r.season)
+		r.season = appendFinite(r.season, seasonCoefficients(st))
+		ints[intSeasonN] = int64(len(r.season) - n)
+	}
 	ints[intOff] = int64(len(r.fc[0]))
+	if fc != nil && w.tracker.logScale() {
+		toValueScale(fc)
+	}
 	if fc != nil {
 		ints[intH] = int64(len(fc.Forecast))
 		for i, col := range [4][]float64{fc.Forecast, fc.SE, fc.CumForecast, fc.CumSE} {
@@ -223,6 +239,51 @@ func (r *seriesRows) add(w *seriesWork, st *estimator.State, pendingDue *time.Ti
 	r.ints = append(r.ints, ints[:]...)
 	r.floats = appendFinite(r.floats, floats[:])
 	return fc
+}
+
+// toValueScale turns the forecast of a state fitted on logarithms into what
+// a log tracker serves: forecast exp(log forecast), the median of the value
+// when the log errors are symmetric; se stays the standard error on the log
+// scale, so that the views form the bounds exp(log forecast -+ t se) (with
+// sidetrend.log_bound); cum_forecast is the running sum of the medians,
+// and cum_se is NaN (NULL): a sum of log-normal values has no closed-form
+// interval. The bound fields are set to exp of the log bounds.
+func toValueScale(fc *estimator.Forecast) {
+	var cum float64
+	for i := range fc.Forecast {
+		for _, xs := range [][]float64{fc.Forecast, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95} {
+			xs[i] = math.Exp(xs[i])
+		}
+		cum += fc.Forecast[i]
+		fc.CumForecast[i] = cum
+		fc.CumLower95[i], fc.CumUpper95[i], fc.CumSE[i] = math.NaN(), math.NaN(), math.NaN()
+	}
+}
+
+// seasonCoefficients returns the seasonal part of theta as pairs (sine,
+// cosine) per harmonic, with sine 0 for a harmonic at period/2, which has
+// a cosine term only (estimator.Spec.Regressors): the seasonal part of the
+// fit at j buckets from the newest is
+//
+//	sum_h a_h sin(h w j) + c_h cos(h w j),  w = 2 pi / period.
+func seasonCoefficients(st *estimator.State) []float64 {
+	theta, err := st.Theta()
+	if err != nil {
+		return nil
+	}
+	spec := st.Spec()
+	out := make([]float64, 0, 2*spec.Harmonics)
+	i := spec.Degree + 1
+	for h := 1; h <= spec.Harmonics; h++ {
+		if 2*float64(h) == spec.Period {
+			out = append(out, 0, theta[i])
+			i++
+			continue
+		}
+		out = append(out, theta[i], theta[i+1])
+		i += 2
+	}
+	return out
 }
 
 // finiteOrNaN maps the infinities to NaN, the writer's mark for NULL.

@@ -13,7 +13,7 @@ import (
 func alterCommand() *cli.Command {
 	return &cli.Command{
 		Name:      "alter",
-		Usage:     "change a tracker's horizon, model, lambda, burn-in, history, span, time zone or bucket width, keeping its data",
+		Usage:     "change a tracker's horizon, model, lambda, burn-in, history, span, time zone, bucket width or transform, keeping its data",
 		ArgsUsage: "NAME",
 		Description: "Only the flags given change. A new model, lambda, burn-in or horizon is replayed from the stored\n" +
 			"points; a new bucket width or time zone reads the source table again (and drops the forecast history,\n" +
@@ -31,6 +31,7 @@ func alterCommand() *cli.Command {
 			&cli.StringFlag{Name: "span", Usage: "rows further than this from now are rejected, as a Postgres interval ('10 years')", EnvVars: []string{"SIDETREND_ALTER_SPAN"}},
 			&cli.StringFlag{Name: "tz", Usage: "time zone the buckets follow (rereads the source)", EnvVars: []string{"SIDETREND_ALTER_TZ"}},
 			&cli.StringFlag{Name: "bucket", Usage: "bucket width as a Postgres interval (rereads the source)", EnvVars: []string{"SIDETREND_ALTER_BUCKET"}},
+			&cli.StringFlag{Name: "transform", Usage: "log or none: fit the logarithms of the values or the values (replays, and drops the forecast history of the old scale)", EnvVars: []string{"SIDETREND_ALTER_TRANSFORM"}},
 		},
 		Action: func(c *cli.Context) error {
 			if c.NArg() != 1 {
@@ -52,7 +53,7 @@ func alterCommand() *cli.Command {
 				return &v
 			}
 			o.Horizon, o.Degree, o.Harmonics, o.BurnIn, o.History = num("horizon"), num("degree"), num("harmonics"), num("burn-in"), num("history")
-			o.Span, o.TZ, o.Bucket = str("span"), str("tz"), str("bucket")
+			o.Span, o.TZ, o.Bucket, o.Transform = str("span"), str("tz"), str("bucket"), str("transform")
 			if c.IsSet("period") {
 				v := c.Float64("period")
 				o.Period = &v
@@ -70,7 +71,7 @@ func alterCommand() *cli.Command {
 				}
 			}
 			if o == (pgsync.AlterOptions{}) {
-				return fmt.Errorf("nothing to change: give one of --horizon, --degree, --period, --harmonics, --lambda, --burn-in, --history, --span, --tz, --bucket")
+				return fmt.Errorf("nothing to change: give one of --horizon, --degree, --period, --harmonics, --lambda, --burn-in, --history, --span, --tz, --bucket, --transform")
 			}
 			pool, err := pgsync.Connect(c.Context, c.String("db"))
 			if err != nil {

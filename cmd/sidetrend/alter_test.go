@@ -42,3 +42,31 @@ func TestAlterCommand(t *testing.T) {
 		}
 	}
 }
+
+// TestTransformFlags: sidetrend track --transform log makes a log tracker,
+// sidetrend alter --transform none turns it back, and an unknown transform
+// gets the function's hint.
+func TestTransformFlags(t *testing.T) {
+	url, pool := salesDB(t)
+	ctx := context.Background()
+	out, err := runCLI(t, ctx, "track", "--db", url, "--table", "public.sales", "--time", "sold_at", "--value", "amount",
+		"--name", "sales_log", "--transform", "log")
+	if err != nil {
+		t.Fatalf("track --transform log: %v\n%s", err, out)
+	}
+	var transform, empty string
+	if err := pool.QueryRow(ctx, `SELECT transform, empty FROM sidetrend.tracker_settings WHERE tracker = 'sales_log'`).Scan(&transform, &empty); err != nil {
+		t.Fatal(err)
+	}
+	if transform != "log" || empty != "gap" {
+		t.Errorf("transform %q, empty %q; want log and gap", transform, empty)
+	}
+	out, err = runCLI(t, ctx, "alter", "--db", url, "--transform", "none", "sales_log")
+	if err != nil || !strings.Contains(out, "transform log -> none") {
+		t.Errorf("alter --transform none: %v\n%s", err, out)
+	}
+	if _, err := runCLI(t, ctx, "track", "--db", url, "--table", "public.sales", "--time", "sold_at", "--value", "amount",
+		"--name", "x", "--transform", "ln"); err == nil || !strings.Contains(err.Error(), "transform => 'log'") {
+		t.Errorf("track --transform ln: %v, want the hint", err)
+	}
+}

@@ -68,6 +68,7 @@ func trackCommand() *cli.Command {
 			&cli.StringFlag{Name: "empty", Usage: "an empty bucket between two observed ones: zero or gap (default zero for sum and count)"},
 			&cli.StringFlag{Name: "tz", Value: "UTC", Usage: "time zone the buckets follow"},
 			&cli.IntFlag{Name: "burn-in", Usage: "points beyond the parameter count before estimates are served"},
+			&cli.StringFlag{Name: "transform", Usage: "log: fit the logarithms of the bucket values (for a season that swings with the level; buckets that are not positive are skipped); forecasts and bounds are transformed back"},
 		},
 		Action: func(c *cli.Context) error {
 			o := pgsync.TrackOptions{Table: c.String("table"), Time: c.String("time"), Value: c.String("value")}
@@ -86,7 +87,7 @@ func trackCommand() *cli.Command {
 				return &v
 			}
 			o.Bucket, o.Agg, o.TZ = str("bucket"), str("agg"), str("tz")
-			o.Name, o.Empty = str("name"), str("empty")
+			o.Name, o.Empty, o.Transform = str("name"), str("empty"), str("transform")
 			o.Degree, o.Horizon, o.BurnIn = num("degree"), num("horizon"), num("burn-in")
 			if c.IsSet("period") && c.Float64("period") > 0 {
 				v := c.Float64("period")

@@ -54,10 +54,20 @@ func (s liveSource) Series(ctx context.Context, tracker, key *string) ([]sqlwire
 	return out, nil
 }
 
+// errLiveLog refuses a log tracker's series: the endpoint's forecasts,
+// what-ifs and backtests work on the values as they are, and a log tracker's
+// stored state is fitted on their logarithms.
+func errLiveLog(tracker string) error {
+	return fmt.Errorf("tracker %q fits the logarithms of its values (transform log), which the live endpoint does not serve yet: read sidetrend.forecasts, or use sidetrend forecast --transform log offline", tracker)
+}
+
 func (s liveSource) State(ctx context.Context, tracker, key string) (*estimator.State, error) {
 	d, err := pgsync.LoadSeries(ctx, s.pool, tracker, key)
 	if err != nil {
 		return nil, err
+	}
+	if d.Tracker.Transform == "log" {
+		return nil, errLiveLog(tracker)
 	}
 	if d.State == nil {
 		return nil, errors.New("the series has no folded bucket yet")
@@ -69,6 +79,9 @@ func (s liveSource) Values(ctx context.Context, tracker, key string) ([]float64,
 	d, err := pgsync.LoadSeries(ctx, s.pool, tracker, key)
 	if err != nil {
 		return nil, err
+	}
+	if d.Tracker.Transform == "log" {
+		return nil, errLiveLog(tracker)
 	}
 	return d.Values, nil
 }
