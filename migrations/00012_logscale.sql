@@ -20,7 +20,8 @@
 -- 3. sidetrend.track(..., transform) and sidetrend.alter_tracker(...,
 --    transform): a function's argument list cannot change in place, so
 --    track, _track_as, alter_tracker and _alter_tracker_as are dropped and
---    created again. _track_as is 00007's body with the transform argument
+--    created again. _track_as is 00007's body (settings checked by
+--    sidetrend.check_settings) with the transform argument
 --    and its check (every check of 00007 kept: check_caller,
 --    source_problem, the caller's SELECT, the settings, the name);
 --    _alter_tracker_as is 00009's with the transform (check_manage kept).
@@ -135,11 +136,6 @@ BEGIN
                   HINT = format('Forecasts are derived from the rows: tracking a table you cannot read would show its data. Ask its owner for GRANT SELECT ON %s TO %I.', _track_as.source::text, caller);
     END IF;
 
-    PERFORM sidetrend.bucket_check(_track_as.bucket);
-    IF _track_as.bucket > interval '100 years' THEN
-        RAISE EXCEPTION 'bucket width ''%'' is longer than 100 years', _track_as.bucket
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a bucket such as ''1 day'', ''1 month'' or ''1 year''.';
-    END IF;
     IF _track_as.agg IS NULL OR _track_as.agg NOT IN ('sum', 'mean', 'min', 'max', 'last', 'count') THEN
         RAISE EXCEPTION 'unknown aggregate "%"', _track_as.agg
             USING ERRCODE = 'invalid_parameter_value', HINT = 'Use agg => sum, mean, min, max, last or count.';
@@ -156,56 +152,12 @@ BEGIN
         RAISE EXCEPTION 'empty => ''zero'' does not go with transform => ''log'': 0 has no logarithm'
             USING ERRCODE = 'invalid_parameter_value', HINT = 'Leave empty out (on the log scale a bucket without rows is a gap), or use transform => ''none''.';
     END IF;
-    PERFORM sidetrend.zone_check(_track_as.tz);
-    IF _track_as.degree IS NULL OR _track_as.degree < 0 OR _track_as.degree > 3 THEN
-        RAISE EXCEPTION 'degree % is not supported', _track_as.degree
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a polynomial degree from 0 to 3 (1 is a local linear trend).';
-    END IF;
-    IF _track_as.lambda IS NOT NULL AND NOT (_track_as.lambda > 0 AND _track_as.lambda <= 1) THEN
-        RAISE EXCEPTION 'lambda % is outside (0, 1]', _track_as.lambda
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a forgetting factor such as 0.95 (1 means no forgetting), or NULL to let the sidecar choose it.';
-    END IF;
-    IF _track_as.period IS NULL AND coalesce(_track_as.harmonics, 0) <> 0 THEN
-        RAISE EXCEPTION '% harmonics need a period', _track_as.harmonics
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass period => the seasonal period in buckets (7 for weekly in days), or harmonics => 0.';
-    END IF;
-    IF _track_as.period IS NOT NULL THEN
-        -- In Postgres NaN is greater than every number: test it by name.
-        IF _track_as.period = 'NaN'::float8 OR _track_as.period = 'Infinity'::float8 THEN
-            RAISE EXCEPTION 'period % is not a number of buckets', _track_as.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Pass period => the seasonal period in buckets, such as 7 or 365.25.';
-        END IF;
-        IF NOT (_track_as.period >= 2) THEN
-            RAISE EXCEPTION 'period % is too short', _track_as.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'A seasonal period must be at least 2 buckets.';
-        END IF;
-        IF _track_as.period > 100000 THEN
-            RAISE EXCEPTION 'period % is longer than 100000 buckets', _track_as.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a wider bucket, or a period such as 7, 24 or 365.25 buckets.';
-        END IF;
-        IF _track_as.harmonics IS NULL OR _track_as.harmonics < 1 OR _track_as.harmonics > 6 THEN
-            RAISE EXCEPTION '% harmonics are not supported with a period', _track_as.harmonics
-                USING ERRCODE = 'invalid_parameter_value', HINT = 'Use harmonics => 1 to 6.';
-        END IF;
-        IF _track_as.harmonics > _track_as.period / 2 THEN
-            RAISE EXCEPTION '% harmonics are too many for period %', _track_as.harmonics, _track_as.period
-                USING ERRCODE = 'invalid_parameter_value', HINT = format('Use at most %s harmonics (period/2).', floor(_track_as.period / 2));
-        END IF;
-    END IF;
-    IF _track_as.horizon IS NULL OR _track_as.horizon < 1 OR _track_as.horizon > 1000 THEN
-        RAISE EXCEPTION 'horizon % is out of range', _track_as.horizon
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use a horizon of 1 to 1000 buckets (the live endpoint serves longer ones).';
-    END IF;
-    IF _track_as.burn_in IS NULL OR _track_as.burn_in < 0 OR _track_as.burn_in > 100000 THEN
-        RAISE EXCEPTION 'burn_in % is out of range', _track_as.burn_in
-            USING ERRCODE = 'invalid_parameter_value', HINT = 'Use burn_in => 0 to 100000 points.';
-    END IF;
-    v_span := coalesce(_track_as.span, least(_track_as.bucket * 100000, interval '1000 years'));
-    IF v_span < _track_as.bucket OR v_span > interval '10000 years' THEN
-        RAISE EXCEPTION 'span ''%'' is out of range', v_span
-            USING ERRCODE = 'invalid_parameter_value',
-                  HINT = 'Use a span of at least one bucket and at most 10000 years (the whole calendar): rows further than the span from now are rejected.';
-    END IF;
+    -- 100,000 buckets, at most 1000 years (a bucket over 100 years, which
+    -- check_settings refuses, would overflow the product).
+    v_span := coalesce(_track_as.span, CASE WHEN _track_as.bucket <= interval '100 years'
+                                            THEN least(_track_as.bucket * 100000, interval '1000 years') END);
+    PERFORM sidetrend.check_settings(_track_as.bucket, _track_as.tz, _track_as.degree, _track_as.period, _track_as.harmonics,
+                                     _track_as.lambda, _track_as.horizon, _track_as.burn_in, 90, v_span);
     IF EXISTS (SELECT 1 FROM sidetrend.trackers t WHERE t.name = v_name) THEN
         RAISE EXCEPTION 'a tracker named "%" already exists', v_name
             USING ERRCODE = 'duplicate_object', HINT = 'Pass name => a new name, or call sidetrend.untrack first.';
