@@ -26,6 +26,8 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/jackc/pgx/v5/pgxpool"
 )
 
 // Config configures the endpoint.
@@ -60,6 +62,7 @@ const DefaultDatabase = "sidetrend"
 type Server struct {
 	cfg Config
 	src Source
+	ev  *evaluator
 	log *slog.Logger
 
 	mu       sync.Mutex
@@ -85,9 +88,10 @@ type Server struct {
 	authFailures   *authThrottle
 }
 
-// New returns a server for cfg that computes its tables from src. Start
-// listens.
-func New(cfg Config, src Source, log *slog.Logger) *Server {
+// New returns a server for cfg that computes its tables from src and has
+// db, the sidecar's own database, evaluate the queries over them (any role
+// that can connect will do: the queries read no table). Start listens.
+func New(cfg Config, src Source, db *pgxpool.Pool, log *slog.Logger) *Server {
 	if log == nil {
 		log = slog.New(slog.DiscardHandler)
 	}
@@ -101,7 +105,7 @@ func New(cfg Config, src Source, log *slog.Logger) *Server {
 		cfg.StartupTimeout = 10 * time.Second
 	}
 	cfg.Limits = cfg.Limits.withDefaults()
-	return &Server{cfg: cfg, src: src, log: log,
+	return &Server{cfg: cfg, src: src, ev: &evaluator{pool: db}, log: log,
 		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{},
 		authFailures: newAuthThrottle(cfg.Limits.AuthFailureDelay, cfg.Limits.AuthFailureMaxDelay, maxAuthAddresses)}
 }
@@ -137,6 +141,12 @@ func (s *Server) Start(ctx context.Context) error {
 	if s.cfg.RequireTLS && (s.cfg.TLSCertFile == "" || s.cfg.TLSKeyFile == "") {
 		return errors.New("sqlwire: TLS is required but no certificate is configured: give a certificate and key (--tls-cert, --tls-key) or turn off --sql-require-tls")
 	}
+	if s.ev.pool == nil {
+		return errors.New("sqlwire: no database: the endpoint evaluates queries in the sidecar's Postgres")
+	}
+	// The parser's WebAssembly module compiles once per process (seconds
+	// on two cores): here rather than in the first client's statement.
+	warmGrammar()
 	if len(s.cfg.Credentials) == 0 {
 		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
 	}

@@ -56,9 +56,6 @@ type session struct {
 	// The running statement's cancel function, for CancelRequest.
 	mu         sync.Mutex
 	cancelStmt context.CancelCauseFunc
-
-	rowBuf  [][]byte
-	textBuf []byte
 }
 
 type savepoint struct {
@@ -67,29 +64,28 @@ type savepoint struct {
 	cursorSeq int
 }
 
-// cursor is a DECLAREd cursor: its plan and the open row iterator.
+// cursor is a DECLAREd cursor: its query's result, evaluated at DECLARE,
+// and how far FETCH has read it.
 type cursor struct {
-	name   string
-	plan   *plan
-	it     rowIter
-	seq    int
-	done   bool
-	failed bool
+	name string
+	res  *result
+	pos  int
+	seq  int
 }
 
 // prepared is a parsed statement of the extended protocol.
 type prepared struct {
-	sql        string
-	st         stmt
-	paramTypes []typ // declared by Parse (tUnknown where 0), extended to the highest $n used
+	sql       string
+	st        stmt
+	paramOIDs []uint32 // declared by Parse (0: inferred by Postgres), extended to the highest $n used
 }
 
 // portal is a bound statement.
 type portal struct {
 	prep   *prepared
 	params []paramVal
-	plan   *plan   // SELECT: compiled at Bind
-	it     rowIter // SELECT: open after the first Execute
+	res    *result // SELECT: evaluated at the first Describe or Execute
+	pos    int
 	sent   int64
 	done   bool
 }

@@ -195,14 +195,13 @@ func checkOneOf(allowed ...string) func(string) (string, error) {
 }
 
 func checkBool(v string) (string, error) {
-	b, err := inputValue(v, tBool, time.UTC)
-	if err != nil {
-		return "", errorf(codeInvalidParameter, "parameter requires a Boolean value, not %q", v)
-	}
-	if b.i != 0 {
+	switch strings.ToLower(strings.TrimSpace(v)) {
+	case "on", "true", "yes", "1", "t", "y":
 		return "on", nil
+	case "off", "false", "no", "0", "f", "n":
+		return "off", nil
 	}
-	return "off", nil
+	return "", errorf(codeInvalidParameter, "parameter requires a Boolean value, not %q", v)
 }
 
 func checkIntRange(lo, hi int) func(string) (string, error) {

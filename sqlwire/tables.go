@@ -4,9 +4,11 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"math/big"
 	"sort"
-	"strings"
+
+	"github.com/jackc/pgx/v5/pgtype"
 
 	"github.com/sidetrend/sidetrend/calendar"
 	"github.com/sidetrend/sidetrend/estimator"
@@ -22,7 +24,8 @@ const MaxHorizon = 10000
 // their domains decide which rows the table computes.
 type columnDef struct {
 	name  string
-	t     typ
+	sql   string // the column's type, as the computed rows are sent
+	kind  colKind
 	param bool
 }
 
@@ -30,7 +33,9 @@ type columnDef struct {
 type tableDef struct {
 	name string
 	cols []columnDef
-	scan func(ctx context.Context, req *scanRequest) (rowIter, error)
+	// rowBytes is about what one computed row holds until Postgres has it.
+	rowBytes int64
+	scan     func(ctx context.Context, req *scanRequest) (*rowSet, error)
 }
 
 func (t *tableDef) column(name string) int {
@@ -42,27 +47,68 @@ func (t *tableDef) column(name string) int {
 	return -1
 }
 
-func (t *tableDef) columnList() string {
-	names := make([]string, len(t.cols))
-	for i, c := range t.cols {
-		names[i] = c.name + " " + c.t.String()
-	}
-	return strings.Join(names, ", ")
-}
-
 // scanRequest is what a table scan gets: the source and the domain of each
 // column (meaningful for parameter columns).
 type scanRequest struct {
+	table   *tableDef
 	src     Source
 	domains []domain
 	budget  *budget // nil: unbounded
 }
 
-// rowIter yields rows one at a time; a returned row is valid until the
-// next call. next returns nil at the end.
-type rowIter interface {
-	next(ctx context.Context) ([]value, error)
+// rowSet holds computed rows column by column, as they are sent to
+// Postgres: one array per column.
+type rowSet struct {
+	n     int
+	text  [][]string
+	f8    [][]pgtype.Float8
+	i4    [][]int32
+	i8    [][]int64
+	ts    [][]pgtype.Timestamptz
+	slots []int // per column: its index in the slice of its type
 }
+
+func newRowSet(t *tableDef) *rowSet {
+	rs := &rowSet{}
+	for _, c := range t.cols {
+		switch c.sql {
+		case "text":
+			rs.slots = append(rs.slots, len(rs.text))
+			rs.text = append(rs.text, nil)
+		case "float8":
+			rs.slots = append(rs.slots, len(rs.f8))
+			rs.f8 = append(rs.f8, nil)
+		case "int4":
+			rs.slots = append(rs.slots, len(rs.i4))
+			rs.i4 = append(rs.i4, nil)
+		case "int8":
+			rs.slots = append(rs.slots, len(rs.i8))
+			rs.i8 = append(rs.i8, nil)
+		case "timestamptz":
+			rs.slots = append(rs.slots, len(rs.ts))
+			rs.ts = append(rs.ts, nil)
+		}
+	}
+	return rs
+}
+
+// array is column i as a Go slice pgx encodes as a Postgres array.
+func (rs *rowSet) array(t *tableDef, i int) any {
+	k := rs.slots[i]
+	switch t.cols[i].sql {
+	case "text":
+		return rs.text[k]
+	case "float8":
+		return rs.f8[k]
+	case "int4":
+		return rs.i4[k]
+	case "int8":
+		return rs.i8[k]
+	}
+	return rs.ts[k]
+}
+
+func f8(v float64) pgtype.Float8 { return pgtype.Float8{Float64: v, Valid: !math.IsNaN(v)} }
 
 var tables = map[string]*tableDef{}
 
@@ -72,54 +118,40 @@ func init() {
 	}
 }
 
-// Column positions of the forecast table.
-const (
-	fcTracker = iota
-	fcKey
-	fcLambda
-	fcHorizon
-	fcPeriodStart
-	fcForecast
-	fcLower80
-	fcUpper80
-	fcLower95
-	fcUpper95
-	fcCumForecast
-	fcCumLower95
-	fcCumUpper95
-)
-
 var forecastTable = &tableDef{
 	name: "forecast",
 	cols: []columnDef{
-		{"tracker", tText, true}, {"series_key", tText, true}, {"lambda", tFloat8, true},
-		{"horizon", tInt4, true}, {"period_start", tTimestamptz, false},
-		{"forecast", tFloat8, false}, {"lower80", tFloat8, false}, {"upper80", tFloat8, false},
-		{"lower95", tFloat8, false}, {"upper95", tFloat8, false},
-		{"cum_forecast", tFloat8, false}, {"cum_lower95", tFloat8, false}, {"cum_upper95", tFloat8, false},
+		{"tracker", "text", kText, true}, {"series_key", "text", kText, true}, {"lambda", "float8", kFloat, true},
+		{"horizon", "int4", kInt, true}, {"period_start", "timestamptz", 0, false},
+		{"forecast", "float8", 0, false}, {"lower80", "float8", 0, false}, {"upper80", "float8", 0, false},
+		{"lower95", "float8", 0, false}, {"upper95", "float8", 0, false},
+		{"cum_forecast", "float8", 0, false}, {"cum_lower95", "float8", 0, false}, {"cum_upper95", "float8", 0, false},
 	},
-	scan: scanForecast,
+	rowBytes: 13 * 16,
+	scan:     scanForecast,
 }
 
 var backtestTable = &tableDef{
 	name: "backtest",
 	cols: []columnDef{
-		{"tracker", tText, true}, {"series_key", tText, true}, {"lambda", tFloat8, true},
-		{"n_errors", tInt8, false}, {"mae", tFloat8, false}, {"rmse", tFloat8, false},
-		{"mape", tFloat8, false}, {"coverage95", tFloat8, false},
+		{"tracker", "text", kText, true}, {"series_key", "text", kText, true}, {"lambda", "float8", kFloat, true},
+		{"n_errors", "int8", 0, false}, {"mae", "float8", 0, false}, {"rmse", "float8", 0, false},
+		{"mape", "float8", 0, false}, {"coverage95", "float8", 0, false},
 	},
-	scan: scanBacktest,
+	rowBytes: 8 * 16,
+	scan:     scanBacktest,
 }
 
 var seriesTable = &tableDef{
 	name: "series",
 	cols: []columnDef{
-		{"tracker", tText, true}, {"series_key", tText, true}, {"points", tInt8, false},
-		{"first_bucket", tTimestamptz, false}, {"last_bucket", tTimestamptz, false},
-		{"lambda", tFloat8, false}, {"degree", tInt4, false}, {"period", tFloat8, false},
-		{"harmonics", tInt4, false}, {"state", tText, false},
+		{"tracker", "text", kText, true}, {"series_key", "text", kText, true}, {"points", "int8", 0, false},
+		{"first_bucket", "timestamptz", 0, false}, {"last_bucket", "timestamptz", 0, false},
+		{"lambda", "float8", 0, false}, {"degree", "int4", 0, false}, {"period", "float8", 0, false},
+		{"harmonics", "int4", 0, false}, {"state", "text", 0, false},
 	},
-	scan: scanSeries,
+	rowBytes: 10 * 16,
+	scan:     scanSeries,
 }
 
 // listSeries asks the source for the series the tracker and series_key
@@ -179,11 +211,6 @@ func listSeries(ctx context.Context, req *scanRequest) ([]SeriesInfo, error) {
 	return kept, nil
 }
 
-func containsString(sorted []string, s string) bool {
-	i := sort.SearchStrings(sorted, s)
-	return i < len(sorted) && sorted[i] == s
-}
-
 // sourceError wraps an error of the Source; a cancelled statement reads as
 // a cancelled statement, whatever the source made of it.
 func sourceError(ctx context.Context, what string, err error) error {
@@ -203,7 +230,7 @@ func lambdas(d domain) (out []float64, ok bool, err error) {
 	if d.all || d.interval {
 		return nil, false, nil
 	}
-	for _, r := range d.pts {
+	for _, r := range d.nums {
 		f, _ := r.Float64()
 		spec := estimator.Spec{Lambda: f}
 		if err := spec.Validate(); err != nil {
@@ -224,7 +251,7 @@ func horizons(d domain) ([]int, error) {
 	}
 	if !d.interval {
 		var out []int
-		for _, r := range d.pts {
+		for _, r := range d.nums {
 			if !r.IsInt() {
 				continue // no integer horizon equals a fraction
 			}
@@ -275,25 +302,20 @@ func ceilRat(r *big.Rat, inclusive bool) *big.Int {
 	return q
 }
 
-// forecastIter computes forecasts one (series, lambda) at a time.
-type forecastIter struct {
-	req      *scanRequest
-	infos    []SeriesInfo
-	lambdas  []float64 // nil: the stored state and its lambda
-	horizons []int
-	maxH     int
+// Column positions of the forecast table.
+const (
+	fcTracker = iota
+	fcKey
+	fcLambda
+	fcHorizon
+	fcPeriodStart
+	fcForecast
+)
 
-	started bool
-	done    bool
-	si, li  int
-	hi      int
-	values  []float64 // of infos[si], loaded once for what-if refits
-	fc      *estimator.Forecast
-	lambda  float64
-	row     []value
-}
-
-func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
+// scanForecast computes the forecasts the domains allow, one (series,
+// lambda) at a time: the stored state, or a what-if refit over the values.
+func scanForecast(ctx context.Context, req *scanRequest) (*rowSet, error) {
+	rs := newRowSet(req.table)
 	hs, err := horizons(req.domains[fcHorizon])
 	if err != nil {
 		return nil, err
@@ -303,7 +325,7 @@ func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
 		return nil, err
 	}
 	if len(hs) == 0 || pinned && len(ls) == 0 {
-		return emptyIter{}, nil
+		return rs, nil
 	}
 	infos, err := listSeries(ctx, req)
 	if err != nil {
@@ -313,237 +335,151 @@ func scanForecast(ctx context.Context, req *scanRequest) (rowIter, error) {
 	if pinned {
 		nl = len(ls)
 	}
-	if err := req.budget.expect(int64(len(infos))*int64(nl)*int64(len(hs)),
+	if err := req.budget.expect(int64(len(infos))*int64(nl)*int64(len(hs)), req.table.rowBytes,
 		fmt.Sprintf("%d series x %s x %s", len(infos), plural(nl, "lambda"), plural(len(hs), "horizon"))); err != nil {
 		return nil, err
 	}
-	it := &forecastIter{req: req, infos: infos, horizons: hs, maxH: hs[len(hs)-1],
-		row: make([]value, fcCumUpper95+1)}
-	if pinned {
-		it.lambdas = ls
-	}
-	return it, nil
-}
-
-func (it *forecastIter) next(ctx context.Context) ([]value, error) {
-	for it.fc == nil || it.hi >= len(it.horizons) {
-		if it.done {
-			return nil, nil
-		}
-		if err := it.advance(ctx); err != nil {
-			return nil, err
-		}
-	}
-	info := &it.infos[it.si]
-	h := it.horizons[it.hi]
-	it.hi++
-	k := h - 1
-	r := it.row
-	r[fcTracker], r[fcKey] = textVal(info.Tracker), textVal(info.Key)
-	r[fcLambda], r[fcHorizon] = float8Val(it.lambda), int4Val(int64(h))
-	r[fcPeriodStart] = nullOf(tTimestamptz)
-	if info.Calendar.Width() != (calendar.Width{}) {
-		r[fcPeriodStart] = timeVal(info.Calendar.Start(info.LastIndex + int64(h)))
-	}
-	fc := it.fc
-	r[fcForecast] = float8OrNull(fc.Forecast[k])
-	r[fcLower80], r[fcUpper80] = float8OrNull(fc.Lower80[k]), float8OrNull(fc.Upper80[k])
-	r[fcLower95], r[fcUpper95] = float8OrNull(fc.Lower95[k]), float8OrNull(fc.Upper95[k])
-	r[fcCumForecast] = float8OrNull(fc.CumForecast[k])
-	r[fcCumLower95], r[fcCumUpper95] = float8OrNull(fc.CumLower95[k]), float8OrNull(fc.CumUpper95[k])
-	return r, nil
-}
-
-// advance moves to the next (series, lambda) whose fit is ready and
-// computes its forecast, or sets done.
-func (it *forecastIter) advance(ctx context.Context) error {
-	for {
-		if it.started {
-			it.li++
-			if it.lambdas == nil || it.li >= len(it.lambdas) {
-				it.si++
-				it.li = 0
-				it.values = nil
+	maxH := hs[len(hs)-1]
+	for i := range infos {
+		info := &infos[i]
+		var values []float64
+		for li := 0; li < nl; li++ {
+			if ctx.Err() != nil {
+				return nil, statementCanceled(ctx)
 			}
-		}
-		it.started = true
-		it.fc = nil
-		if it.si >= len(it.infos) {
-			it.done = true
-			return nil
-		}
-		if ctx.Err() != nil {
-			return statementCanceled(ctx)
-		}
-		info := &it.infos[it.si]
-		var st *estimator.State
-		if it.lambdas == nil {
-			s, err := it.req.src.State(ctx, info.Tracker, info.Key)
-			if err != nil {
-				return sourceError(ctx, fmt.Sprintf("read the state of series %q/%q", info.Tracker, info.Key), err)
-			}
-			if s == nil {
-				continue
-			}
-			st = s
-			it.lambda = info.Spec.Lambda
-		} else {
-			if it.values == nil {
-				ys, err := it.req.src.Values(ctx, info.Tracker, info.Key)
+			var st *estimator.State
+			lambda := info.Spec.Lambda
+			if !pinned {
+				s, err := req.src.State(ctx, info.Tracker, info.Key)
 				if err != nil {
-					return sourceError(ctx, fmt.Sprintf("read the values of series %q/%q", info.Tracker, info.Key), err)
+					return nil, sourceError(ctx, fmt.Sprintf("read the state of series %q/%q", info.Tracker, info.Key), err)
 				}
-				it.values = ys
+				if s == nil {
+					continue
+				}
+				st = s
+			} else {
+				if values == nil {
+					if values, err = req.src.Values(ctx, info.Tracker, info.Key); err != nil {
+						return nil, sourceError(ctx, fmt.Sprintf("read the values of series %q/%q", info.Tracker, info.Key), err)
+					}
+				}
+				spec := info.Spec
+				spec.Lambda, lambda = ls[li], ls[li]
+				if st, err = estimator.Fit(spec, values); err != nil {
+					return nil, errorf(codeInvalidParameter, "refit series %q/%q with lambda %v: %v", info.Tracker, info.Key, spec.Lambda, err)
+				}
 			}
-			spec := info.Spec
-			spec.Lambda = it.lambdas[it.li]
-			s, err := estimator.Fit(spec, it.values)
+			if !st.Ready() {
+				continue // a series still warming up has no forecast
+			}
+			fc, err := st.Forecast(maxH)
 			if err != nil {
-				return errorf(codeInvalidParameter, "refit series %q/%q with lambda %v: %v", info.Tracker, info.Key, spec.Lambda, err)
+				return nil, errorf(codeInternal, "forecast series %q/%q: %v", info.Tracker, info.Key, err)
 			}
-			st = s
-			it.lambda = spec.Lambda
+			hasCal := info.Calendar.Width() != (calendar.Width{})
+			for _, h := range hs {
+				k := h - 1
+				rs.text[0] = append(rs.text[0], info.Tracker)
+				rs.text[1] = append(rs.text[1], info.Key)
+				rs.i4[0] = append(rs.i4[0], int32(h))
+				var ts pgtype.Timestamptz
+				if hasCal {
+					ts = pgtype.Timestamptz{Time: info.Calendar.Start(info.LastIndex + int64(h)), Valid: true}
+				}
+				rs.ts[0] = append(rs.ts[0], ts)
+				rs.f8[0] = append(rs.f8[0], pgtype.Float8{Float64: lambda, Valid: true})
+				for j, v := range [...]float64{fc.Forecast[k], fc.Lower80[k], fc.Upper80[k], fc.Lower95[k], fc.Upper95[k],
+					fc.CumForecast[k], fc.CumLower95[k], fc.CumUpper95[k]} {
+					rs.f8[1+j] = append(rs.f8[1+j], f8(v))
+				}
+				rs.n++
+			}
 		}
-		if !st.Ready() {
-			continue // a series still warming up has no forecast
-		}
-		fc, err := st.Forecast(it.maxH)
-		if err != nil {
-			return errorf(codeInternal, "forecast series %q/%q: %v", info.Tracker, info.Key, err)
-		}
-		it.fc = fc
-		it.hi = 0
-		return nil
 	}
+	return rs, nil
 }
 
-type emptyIter struct{}
-
-func (emptyIter) next(context.Context) ([]value, error) { return nil, nil }
-
-// sliceIter yields precomputed rows.
-type sliceIter struct {
-	rows [][]value
-	i    int
-}
-
-func (it *sliceIter) next(ctx context.Context) ([]value, error) {
-	if it.i >= len(it.rows) {
-		return nil, nil
-	}
-	it.i++
-	return it.rows[it.i-1], nil
-}
-
-// backtestIter runs estimator.Backtest one (series, lambda) at a time.
-type backtestIter struct {
-	req     *scanRequest
-	infos   []SeriesInfo
-	lambdas []float64
-	si, li  int
-	values  []float64
-	row     []value
-}
-
-func scanBacktest(ctx context.Context, req *scanRequest) (rowIter, error) {
+// scanBacktest runs estimator.Backtest for each series and lambda: the
+// pinned lambdas, or the default grid within the lambda domain.
+func scanBacktest(ctx context.Context, req *scanRequest) (*rowSet, error) {
+	rs := newRowSet(req.table)
 	ls, pinned, err := lambdas(req.domains[2])
 	if err != nil {
 		return nil, err
 	}
 	if !pinned {
-		ls = estimator.DefaultGrid()
-		ls = filterLambdas(ls, req.domains[2])
+		for _, l := range estimator.DefaultGrid() {
+			if req.domains[2].all || req.domains[2].contains(new(big.Rat).SetFloat64(l)) {
+				ls = append(ls, l)
+			}
+		}
 	}
 	if len(ls) == 0 {
-		return emptyIter{}, nil
+		return rs, nil
 	}
 	infos, err := listSeries(ctx, req)
 	if err != nil {
 		return nil, err
 	}
-	if err := req.budget.expect(int64(len(infos))*int64(len(ls)),
+	if err := req.budget.expect(int64(len(infos))*int64(len(ls)), req.table.rowBytes,
 		fmt.Sprintf("%d series x %s", len(infos), plural(len(ls), "lambda"))); err != nil {
 		return nil, err
 	}
-	return &backtestIter{req: req, infos: infos, lambdas: ls, row: make([]value, 8)}, nil
-}
-
-// filterLambdas keeps the grid lambdas inside an interval domain.
-func filterLambdas(ls []float64, d domain) []float64 {
-	if !d.interval {
-		return ls
-	}
-	var out []float64
-	for _, l := range ls {
-		if d.contains(new(big.Rat).SetFloat64(l)) {
-			out = append(out, l)
-		}
-	}
-	return out
-}
-
-func (it *backtestIter) next(ctx context.Context) ([]value, error) {
-	for it.si < len(it.infos) {
-		if it.li >= len(it.lambdas) {
-			it.si++
-			it.li = 0
-			it.values = nil
-			continue
-		}
-		if err := ctx.Err(); err != nil {
-			return nil, statementCanceled(ctx)
-		}
-		info := &it.infos[it.si]
-		if it.values == nil {
-			ys, err := it.req.src.Values(ctx, info.Tracker, info.Key)
-			if err != nil {
-				return nil, sourceError(ctx, fmt.Sprintf("read the values of series %q/%q", info.Tracker, info.Key), err)
+	for _, info := range infos {
+		var values []float64
+		for _, l := range ls {
+			if ctx.Err() != nil {
+				return nil, statementCanceled(ctx)
 			}
-			it.values = ys
+			if values == nil {
+				if values, err = req.src.Values(ctx, info.Tracker, info.Key); err != nil {
+					return nil, sourceError(ctx, fmt.Sprintf("read the values of series %q/%q", info.Tracker, info.Key), err)
+				}
+			}
+			spec := info.Spec
+			spec.Lambda = l
+			es, err := estimator.Backtest(spec, values)
+			if err != nil {
+				return nil, errorf(codeInvalidParameter, "backtest series %q/%q with lambda %v: %v", info.Tracker, info.Key, l, err)
+			}
+			rs.text[0] = append(rs.text[0], info.Tracker)
+			rs.text[1] = append(rs.text[1], info.Key)
+			rs.i8[0] = append(rs.i8[0], es.N)
+			for j, v := range [...]float64{l, es.MAE, es.RMSE, es.MAPE, es.Cov95} {
+				rs.f8[j] = append(rs.f8[j], f8(v))
+			}
+			rs.n++
 		}
-		spec := info.Spec
-		spec.Lambda = it.lambdas[it.li]
-		it.li++
-		es, err := estimator.Backtest(spec, it.values)
-		if err != nil {
-			return nil, errorf(codeInvalidParameter, "backtest series %q/%q with lambda %v: %v", info.Tracker, info.Key, spec.Lambda, err)
-		}
-		r := it.row
-		r[0], r[1], r[2] = textVal(info.Tracker), textVal(info.Key), float8Val(spec.Lambda)
-		r[3] = int8Val(es.N)
-		r[4], r[5] = float8OrNull(es.MAE), float8OrNull(es.RMSE)
-		r[6], r[7] = float8OrNull(es.MAPE), float8OrNull(es.Cov95)
-		return r, nil
 	}
-	return nil, nil
+	return rs, nil
 }
 
-func scanSeries(ctx context.Context, req *scanRequest) (rowIter, error) {
+func scanSeries(ctx context.Context, req *scanRequest) (*rowSet, error) {
+	rs := newRowSet(req.table)
 	infos, err := listSeries(ctx, req)
 	if err != nil {
 		return nil, err
 	}
-	if err := req.budget.expect(int64(len(infos)), fmt.Sprintf("%d series", len(infos))); err != nil {
+	if err := req.budget.expect(int64(len(infos)), req.table.rowBytes, fmt.Sprintf("%d series", len(infos))); err != nil {
 		return nil, err
 	}
-	rows := make([][]value, len(infos))
-	for i, s := range infos {
-		period := float8Val(s.Spec.Period)
-		if s.Spec.Period == 0 {
-			period = nullOf(tFloat8)
+	for _, s := range infos {
+		period := math.NaN()
+		if s.Spec.Period != 0 {
+			period = s.Spec.Period
 		}
-		first, last := nullOf(tTimestamptz), nullOf(tTimestamptz)
-		if !s.FirstBucket.IsZero() {
-			first = timeVal(s.FirstBucket)
-		}
-		if !s.LastBucket.IsZero() {
-			last = timeVal(s.LastBucket)
-		}
-		rows[i] = []value{
-			textVal(s.Tracker), textVal(s.Key), int8Val(s.Points), first, last,
-			float8OrNull(s.Spec.Lambda), int4Val(int64(s.Spec.Degree)), period,
-			int4Val(int64(s.Spec.Harmonics)), textVal(s.State),
-		}
+		rs.text[0] = append(rs.text[0], s.Tracker)
+		rs.text[1] = append(rs.text[1], s.Key)
+		rs.text[2] = append(rs.text[2], s.State)
+		rs.i8[0] = append(rs.i8[0], s.Points)
+		rs.ts[0] = append(rs.ts[0], pgtype.Timestamptz{Time: s.FirstBucket, Valid: !s.FirstBucket.IsZero()})
+		rs.ts[1] = append(rs.ts[1], pgtype.Timestamptz{Time: s.LastBucket, Valid: !s.LastBucket.IsZero()})
+		rs.f8[0] = append(rs.f8[0], f8(s.Spec.Lambda))
+		rs.f8[1] = append(rs.f8[1], f8(period))
+		rs.i4[0] = append(rs.i4[0], int32(s.Spec.Degree))
+		rs.i4[1] = append(rs.i4[1], int32(s.Spec.Harmonics))
+		rs.n++
 	}
-	return &sliceIter{rows: rows}, nil
+	return rs, nil
 }
