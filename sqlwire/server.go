@@ -13,9 +13,7 @@ package sqlwire
 
 import (
 	"context"
-	"crypto/hmac"
 	"crypto/rand"
-	"crypto/sha256"
 	"crypto/subtle"
 	"crypto/tls"
 	"encoding/binary"
@@ -28,6 +26,7 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/xdg-go/scram"
 )
 
 // Config configures the endpoint.
@@ -68,7 +67,7 @@ type Server struct {
 	mu       sync.Mutex
 	ln       net.Listener
 	tls      *tls.Config
-	secrets  map[string]*scramSecret
+	secrets  map[string]scram.StoredCredentials
 	fakeKey  []byte // keys fake SCRAM salts for unknown users
 	sessions map[uint32]*session
 	conns    map[net.Conn]struct{}
@@ -150,18 +149,13 @@ func (s *Server) Start(ctx context.Context) error {
 	if len(s.cfg.Credentials) == 0 {
 		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
 	}
-	secrets := map[string]*scramSecret{}
+	secrets := map[string]scram.StoredCredentials{}
 	for user, pw := range s.cfg.Credentials {
 		if user == "" {
 			return errors.New("sqlwire: a credential has an empty user name: write user:password")
 		}
 		if pw == "" {
 			return fmt.Errorf("sqlwire: user %q has an empty password: postgres_fdw requires a password for non-superusers", user)
-		}
-		for i := 0; i < len(pw); i++ {
-			if pw[i] >= 0x80 {
-				return fmt.Errorf("sqlwire: the password of user %q has non-ASCII characters: use ASCII, which SCRAM clients send unchanged", user)
-			}
 		}
 		salt := make([]byte, scramSaltLen)
 		if _, err := rand.Read(salt); err != nil {
@@ -387,18 +381,4 @@ func (s *Server) cancelRequest(pid uint32, secret []byte) {
 		s.cancels.Add(1)
 		s.log.Info("sql endpoint statement cancelled by request", "pid", pid, "user", sess.user)
 	}
-}
-
-// secretFor returns the SCRAM secret of user, or a fake one (stable per
-// user name, never matching) so that unknown users go through the same
-// exchange and fail at the same step as a wrong password.
-func (s *Server) secretFor(user string) (*scramSecret, bool) {
-	if sec, ok := s.secrets[user]; ok {
-		return sec, true
-	}
-	m := hmac.New(sha256.New, s.fakeKey)
-	m.Write([]byte(user))
-	sum := m.Sum(nil)
-	return &scramSecret{salt: sum[:scramSaltLen], iters: scramIterations,
-		storedKey: make([]byte, sha256.Size), serverKey: make([]byte, sha256.Size)}, false
 }

@@ -326,15 +326,15 @@ func (sess *session) authenticate() error {
 	if init.AuthMechanism != scramMechanism {
 		return fatalf(codeProtocolViolation, "client selected an invalid SASL authentication mechanism %q: use %s", init.AuthMechanism, scramMechanism)
 	}
-	x := &scramExchange{secret: sec}
-	nonce, err := newServerNonce()
+	conv, err := scramServer(sec)
 	if err != nil {
-		return fatalf(codeInternal, "%v", err)
+		return fatalf(codeInternal, "SCRAM: %v", err)
 	}
-	if err := x.clientFirst(string(init.Data), nonce); err != nil {
-		return fatalf(codeProtocolViolation, "%v", err)
+	serverFirst, err := conv.Step(string(init.Data))
+	if err != nil {
+		return fatalf(codeProtocolViolation, "malformed SCRAM message: %v", err)
 	}
-	sess.be.Send(&pgproto3.AuthenticationSASLContinue{Data: []byte(x.serverFirst)})
+	sess.be.Send(&pgproto3.AuthenticationSASLContinue{Data: []byte(serverFirst)})
 	if err := sess.be.Flush(); err != nil {
 		return err
 	}
@@ -349,10 +349,8 @@ func (sess *session) authenticate() error {
 	if !ok {
 		return fatalf(codeProtocolViolation, "expected SASL response, got %T", msg)
 	}
-	final, good, err := x.clientFinal(string(resp.Data))
-	if err != nil {
-		return fatalf(codeProtocolViolation, "%v", err)
-	}
+	final, _ := conv.Step(string(resp.Data))
+	good := conv.Valid()
 	if !good || !known {
 		delay := s.authFailures.failed(hostOf(sess.conn.RemoteAddr()))
 		sess.log.Info("sql endpoint authentication failed", "known_user", known, "delay", delay)
