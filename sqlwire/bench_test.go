@@ -122,7 +122,7 @@ func BenchmarkParse(b *testing.B) {
 	b.Run("deparse", func(b *testing.B) {
 		b.ReportAllocs()
 		for b.Loop() {
-			if _, _, err := deparse(q, 0); err != nil {
+			if _, err := deparse(q, 0); err != nil {
 				b.Fatal(err)
 			}
 		}

@@ -2,8 +2,12 @@ package sqlwire
 
 import (
 	"context"
+	"crypto/rand"
+	"encoding/hex"
 	"errors"
 	"fmt"
+	"strconv"
+	"strings"
 
 	"github.com/jackc/pgx/v5/pgconn"
 	"github.com/jackc/pgx/v5/pgproto3"
@@ -17,11 +21,11 @@ import (
 // them, so that every condition, expression, sort, aggregate and LIMIT
 // has exactly Postgres' meaning. Each endpoint table in FROM becomes
 //
-//	ROWS FROM (pg_catalog.unnest($k::text[] COLLATE "C"), pg_catalog.unnest($k+1::text[] COLLATE "C"),
-//	           pg_catalog.unnest($k+2::float8[]), ...) AS alias(tracker, series_key, lambda, ...)
+//	(SELECT pg_catalog.unnest($k::pg_catalog.text[] COLLATE "C") AS tracker,
+//	        pg_catalog.unnest($k+1::pg_catalog.int4[]) AS horizon, ...) alias
 //
-// with the computed columns sent as binary arrays after the client's own
-// parameters, and the tree is deparsed back to SQL by the same library
+// over the columns the query uses, sent as binary arrays after the
+// client's own parameters, and the tree is deparsed back to SQL by the same library
 // that parsed it. The query runs in a read-only transaction with
 // search_path pg_catalog and the client's TimeZone, DateStyle,
 // IntervalStyle and extra_float_digits, in one round trip; rows come back
@@ -51,55 +55,77 @@ var arrayOID = map[string]uint32{
 	"int8": pgtype.Int8ArrayOID, "timestamptz": pgtype.TimestamptzArrayOID,
 }
 
-// rowsNode is the FROM item that stands for the computed rows of t.
-func rowsNode(t *tableDef, alias string, firstParam int) *pg.Node {
-	args := make([]*pg.Node, len(t.cols))
-	names := make([]*pg.Node, len(t.cols))
-	for i, c := range t.cols {
-		x := castNode(pg.MakeParamRefNode(int32(firstParam+i), -1), c.sql, true)
-		if c.sql == "text" {
-			x = &pg.Node{Node: &pg.Node_CollateClause{CollateClause: &pg.CollateClause{Arg: x,
-				Collname: []*pg.Node{pg.MakeStrNode("C")}, Location: -1}}}
+// rowsSQL is the FROM item that stands for the computed rows of r: the
+// columns the query uses, from parameters firstParam on, unnested side by
+// side in the select list (ProjectSet, which streams, where ROWS FROM
+// would first copy every array into a tuplestore).
+func rowsSQL(r *relRef, firstParam int) string {
+	var b strings.Builder
+	b.WriteString("(SELECT ")
+	for i, j := range r.used {
+		c := r.table.cols[j]
+		if i > 0 {
+			b.WriteString(", ")
 		}
-		args[i] = x
-		names[i] = pg.MakeStrNode(c.name)
+		fmt.Fprintf(&b, "pg_catalog.unnest($%d::pg_catalog.%s[]", firstParam+i, c.sql)
+		if c.sql == "text" {
+			b.WriteString(` COLLATE "C"`)
+		}
+		b.WriteString(") AS ")
+		b.WriteString(c.name)
 	}
-	funcs := make([]*pg.Node, len(args))
-	for i, a := range args {
-		call := pg.MakeFuncCallNode([]*pg.Node{pg.MakeStrNode("pg_catalog"), pg.MakeStrNode("unnest")}, []*pg.Node{a}, -1)
-		call.GetFuncCall().Funcformat = pg.CoercionForm_COERCE_EXPLICIT_CALL
-		funcs[i] = pg.MakeListNode([]*pg.Node{call, {}})
-	}
-	return &pg.Node{Node: &pg.Node_RangeFunction{RangeFunction: &pg.RangeFunction{
-		IsRowsfrom: true, Functions: funcs,
-		Alias: &pg.Alias{Aliasname: alias, Colnames: names},
-	}}}
+	b.WriteString(")")
+	return b.String()
 }
 
+// placeholder names the computed rows in the deparsed text until rowsSQL
+// replaces it: random per process, so no client can write it.
+var placeholder = func() string {
+	var b [8]byte
+	rand.Read(b[:])
+	return "sidetrend_rows_" + hex.EncodeToString(b[:]) + "_"
+}()
+
 // deparse writes q back as SQL with each endpoint table replaced by its
-// computed rows, whose parameters follow the client's. It returns the
-// first parameter number of each relation.
-func deparse(q *selectStmt, nparams int) (string, []int, error) {
-	saved := make([]pg.Node, len(q.rels))
-	firsts := make([]int, len(q.rels))
+// computed rows, whose parameters follow the client's. The library
+// deparses the tree with a placeholder table carrying the alias and
+// alias; the rows' subquery is spliced in for the placeholder (the library
+// takes ten times longer to print thirteen unnest calls than a whole
+// statement).
+func deparse(q *selectStmt, nparams int) (string, error) {
+	type savedRV struct {
+		schema, name string
+		alias        *pg.Alias
+	}
+	saved := make([]savedRV, len(q.rels))
 	next := nparams + 1
+	repl := make([]string, 0, 2*len(q.rels))
 	for i, r := range q.rels {
-		saved[i] = pg.Node{Node: r.node.Node}
-		firsts[i] = next
-		r.node.Node = rowsNode(r.table, r.alias, next).Node
-		next += len(r.table.cols)
+		rv := r.rv
+		saved[i] = savedRV{rv.Schemaname, rv.Relname, rv.Alias}
+		name := placeholder + strconv.Itoa(i)
+		rv.Schemaname, rv.Relname, rv.Alias = "", name, &pg.Alias{Aliasname: r.alias}
+		repl = append(repl, name, rowsSQL(r, next))
+		next += len(r.used)
 	}
 	defer func() {
 		for i, r := range q.rels {
-			r.node.Node = saved[i].Node
+			r.rv.Schemaname, r.rv.Relname, r.rv.Alias = saved[i].schema, saved[i].name, saved[i].alias
 		}
 	}()
 	tree := &pg.ParseResult{Stmts: []*pg.RawStmt{{Stmt: &pg.Node{Node: &pg.Node_SelectStmt{SelectStmt: q.sel}}}}}
 	sql, err := deparseTree(tree)
 	if err != nil {
-		return "", nil, errorf(codeInternal, "deparse the query: %v", err)
+		return "", errorf(codeInternal, "deparse the query: %v", err)
 	}
-	return sql, firsts, nil
+	// The longest name first: placeholder_1 is a prefix of placeholder_10.
+	for i := len(repl) - 2; i >= 0; i -= 2 {
+		if strings.Count(sql, repl[i]) != 1 {
+			return "", errorf(codeInternal, "deparse the query: table %d is not where it was", i/2)
+		}
+		sql = strings.Replace(sql, repl[i], repl[i+1], 1)
+	}
+	return sql, nil
 }
 
 // sessionSQL applies the client's settings for the rest of the
@@ -204,7 +230,7 @@ func (ev *evaluator) constants(ctx context.Context, p *pushdown, set *settings) 
 
 // run evaluates q over the computed rows.
 func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, rows []*rowSet, set *settings, b *budget) (*result, error) {
-	sql, _, err := deparse(q, len(params))
+	sql, err := deparse(q, len(params))
 	if err != nil {
 		return nil, err
 	}
@@ -221,14 +247,10 @@ func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, 
 		formats = append(formats, pgtype.TextFormatCode)
 	}
 	for i, r := range q.rels {
-		for j, c := range r.table.cols {
-			oid := arrayOID[c.sql]
-			buf, err := typeMap.Encode(oid, pgtype.BinaryFormatCode, rows[i].array(r.table, j), nil)
-			if err != nil {
-				return nil, errorf(codeInternal, "encode column %s: %v", c.name, err)
-			}
-			values = append(values, buf)
-			oids = append(oids, oid)
+		for _, j := range r.used {
+			c := r.table.cols[j]
+			values = append(values, rows[i].encodeArray(r.table, j, make([]byte, 0, 20+rows[i].n*16)))
+			oids = append(oids, arrayOID[c.sql])
 			formats = append(formats, pgtype.BinaryFormatCode)
 		}
 	}
@@ -258,14 +280,14 @@ func fieldsOf(fds []pgconn.FieldDescription) []pgproto3.FieldDescription {
 // describe asks Postgres for the parameter types and result columns of q
 // without computing anything: the tables stand in with no rows.
 func (ev *evaluator) describe(ctx context.Context, q *selectStmt, declared []uint32) ([]uint32, []pgproto3.FieldDescription, error) {
-	sql, _, err := deparse(q, len(declared))
+	sql, err := deparse(q, len(declared))
 	if err != nil {
 		return nil, nil, err
 	}
 	oids := append([]uint32(nil), declared...)
 	for _, r := range q.rels {
-		for _, c := range r.table.cols {
-			oids = append(oids, arrayOID[c.sql])
+		for _, j := range r.used {
+			oids = append(oids, arrayOID[r.table.cols[j].sql])
 		}
 	}
 	c, err := ev.pool.Acquire(ctx)

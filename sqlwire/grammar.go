@@ -34,9 +34,9 @@ type selectStmt struct {
 // relRef is one endpoint table in a SELECT's FROM clause.
 type relRef struct {
 	rv    *pg.RangeVar
-	node  *pg.Node // the FROM item, replaced by the computed rows when run
 	table *tableDef
 	alias string
+	used  []int // the columns the query refers to, in table order; the others are not sent
 }
 
 type declareStmt struct {
@@ -324,7 +324,91 @@ func checkSelect(sel *pg.SelectStmt) (*selectStmt, error) {
 	if err := c.selectStmt(sel); err != nil {
 		return nil, err
 	}
+	q.usedColumns()
 	return q, nil
+}
+
+// usedColumns finds, for each table, the columns the query can refer to:
+// a column named with the table's alias, an unqualified name any table has,
+// every column for * or alias.*, the columns of JOIN USING. A table none of
+// whose columns is named still sends its first, so that its rows count.
+func (q *selectStmt) usedColumns() {
+	used := make([]map[int]bool, len(q.rels))
+	for i := range used {
+		used[i] = map[int]bool{}
+	}
+	mark := func(rel, col string) {
+		for i, r := range q.rels {
+			if rel != "" && rel != r.alias {
+				continue
+			}
+			for j, c := range r.table.cols {
+				if col == "*" || c.name == col {
+					used[i][j] = true
+				}
+			}
+		}
+	}
+	visit := func(n *pg.Node) {
+		walk(n, func(x *pg.Node) {
+			cr := x.GetColumnRef()
+			if cr == nil {
+				return
+			}
+			var names []string
+			for _, f := range cr.Fields {
+				if f.GetAStar() != nil {
+					names = append(names, "*")
+				} else if s := f.GetString_(); s != nil {
+					names = append(names, s.Sval)
+				}
+			}
+			switch len(names) {
+			case 1:
+				mark("", names[0])
+			case 2:
+				mark(names[0], names[1])
+			default:
+				mark("", "*")
+			}
+		})
+	}
+	s := q.sel
+	for _, l := range [][]*pg.Node{s.DistinctClause, s.TargetList, s.GroupClause, s.SortClause} {
+		for _, n := range l {
+			visit(n)
+		}
+	}
+	for _, n := range []*pg.Node{s.WhereClause, s.HavingClause, s.LimitCount, s.LimitOffset} {
+		visit(n)
+	}
+	var joins func(n *pg.Node)
+	joins = func(n *pg.Node) {
+		if j := n.GetJoinExpr(); j != nil {
+			visit(j.Quals)
+			for _, u := range j.UsingClause {
+				mark("", u.GetString_().GetSval())
+			}
+			if j.IsNatural {
+				mark("", "*")
+			}
+			joins(j.Larg)
+			joins(j.Rarg)
+		}
+	}
+	for _, f := range s.FromClause {
+		joins(f)
+	}
+	for i, r := range q.rels {
+		if len(used[i]) == 0 {
+			used[i][0] = true
+		}
+		for j := range r.table.cols {
+			if used[i][j] {
+				r.used = append(r.used, j)
+			}
+		}
+	}
 }
 
 func (c *checker) selectStmt(s *pg.SelectStmt) error {
@@ -385,7 +469,7 @@ func (c *checker) fromItem(n *pg.Node) error {
 				return errorf("42712", "table name %q specified more than once", alias)
 			}
 		}
-		c.q.rels = append(c.q.rels, &relRef{rv: rv, node: n, table: t, alias: alias})
+		c.q.rels = append(c.q.rels, &relRef{rv: rv, table: t, alias: alias})
 		return nil
 	case n.GetJoinExpr() != nil:
 		j := n.GetJoinExpr()

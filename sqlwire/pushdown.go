@@ -193,6 +193,10 @@ func walk(n *pg.Node, fn func(*pg.Node)) {
 		}
 	case *pg.Node_TypeCast:
 		walk(x.TypeCast.Arg, fn)
+	case *pg.Node_ResTarget:
+		walk(x.ResTarget.Val, fn)
+	case *pg.Node_SortBy:
+		walk(x.SortBy.Node, fn)
 	case *pg.Node_CollateClause:
 		walk(x.CollateClause.Arg, fn)
 	case *pg.Node_AExpr:
@@ -229,6 +233,9 @@ func walk(n *pg.Node, fn func(*pg.Node)) {
 		}
 	case *pg.Node_FuncCall:
 		for _, a := range x.FuncCall.Args {
+			walk(a, fn)
+		}
+		for _, a := range x.FuncCall.AggOrder {
 			walk(a, fn)
 		}
 		walk(x.FuncCall.AggFilter, fn)

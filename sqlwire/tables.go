@@ -2,11 +2,14 @@ package sqlwire
 
 import (
 	"context"
+	"encoding/binary"
 	"errors"
 	"fmt"
 	"math"
 	"math/big"
+	"slices"
 	"sort"
+	"time"
 
 	"github.com/jackc/pgx/v5/pgtype"
 
@@ -92,21 +95,96 @@ func newRowSet(t *tableDef) *rowSet {
 	return rs
 }
 
-// array is column i as a Go slice pgx encodes as a Postgres array.
-func (rs *rowSet) array(t *tableDef, i int) any {
-	k := rs.slots[i]
-	switch t.cols[i].sql {
-	case "text":
-		return rs.text[k]
-	case "float8":
-		return rs.f8[k]
-	case "int4":
-		return rs.i4[k]
-	case "int8":
-		return rs.i8[k]
+// grow makes room for n more rows in every column.
+func (rs *rowSet) grow(n int) {
+	for i := range rs.text {
+		rs.text[i] = slices.Grow(rs.text[i], n)
 	}
-	return rs.ts[k]
+	for i := range rs.f8 {
+		rs.f8[i] = slices.Grow(rs.f8[i], n)
+	}
+	for i := range rs.i4 {
+		rs.i4[i] = slices.Grow(rs.i4[i], n)
+	}
+	for i := range rs.i8 {
+		rs.i8[i] = slices.Grow(rs.i8[i], n)
+	}
+	for i := range rs.ts {
+		rs.ts[i] = slices.Grow(rs.ts[i], n)
+	}
 }
+
+// encodeArray appends column i in the binary format of a Postgres array
+// (array_send: dimensions, null flag, element type, then each element as
+// its length and its binary form; -1 for NULL).
+func (rs *rowSet) encodeArray(t *tableDef, i int, buf []byte) []byte {
+	k := rs.slots[i]
+	sql := t.cols[i].sql
+	nulls := int32(0)
+	switch sql {
+	case "float8":
+		for _, v := range rs.f8[k] {
+			if !v.Valid {
+				nulls = 1
+			}
+		}
+	case "timestamptz":
+		for _, v := range rs.ts[k] {
+			if !v.Valid {
+				nulls = 1
+			}
+		}
+	}
+	be := binary.BigEndian
+	buf = be.AppendUint32(buf, 1)
+	buf = be.AppendUint32(buf, uint32(nulls))
+	buf = be.AppendUint32(buf, elemOID[sql])
+	buf = be.AppendUint32(buf, uint32(rs.n))
+	buf = be.AppendUint32(buf, 1)
+	switch sql {
+	case "text":
+		for _, v := range rs.text[k] {
+			buf = be.AppendUint32(buf, uint32(len(v)))
+			buf = append(buf, v...)
+		}
+	case "float8":
+		for _, v := range rs.f8[k] {
+			if !v.Valid {
+				buf = be.AppendUint32(buf, 0xffffffff)
+				continue
+			}
+			buf = be.AppendUint32(buf, 8)
+			buf = be.AppendUint64(buf, math.Float64bits(v.Float64))
+		}
+	case "int4":
+		for _, v := range rs.i4[k] {
+			buf = be.AppendUint32(buf, 4)
+			buf = be.AppendUint32(buf, uint32(v))
+		}
+	case "int8":
+		for _, v := range rs.i8[k] {
+			buf = be.AppendUint32(buf, 8)
+			buf = be.AppendUint64(buf, uint64(v))
+		}
+	case "timestamptz":
+		for _, v := range rs.ts[k] {
+			if !v.Valid {
+				buf = be.AppendUint32(buf, 0xffffffff)
+				continue
+			}
+			buf = be.AppendUint32(buf, 8)
+			buf = be.AppendUint64(buf, uint64(v.Time.UnixMicro()-postgresEpoch.UnixMicro()))
+		}
+	}
+	return buf
+}
+
+// postgresEpoch is where timestamptz's binary form counts microseconds from.
+var postgresEpoch = time.Date(2000, 1, 1, 0, 0, 0, 0, time.UTC)
+
+// elemOID is the element type of each column type.
+var elemOID = map[string]uint32{"text": pgtype.TextOID, "float8": pgtype.Float8OID, "int4": pgtype.Int4OID,
+	"int8": pgtype.Int8OID, "timestamptz": pgtype.TimestamptzOID}
 
 func f8(v float64) pgtype.Float8 { return pgtype.Float8{Float64: v, Valid: !math.IsNaN(v)} }
 
@@ -340,6 +418,7 @@ func scanForecast(ctx context.Context, req *scanRequest) (*rowSet, error) {
 		return nil, err
 	}
 	maxH := hs[len(hs)-1]
+	rs.grow(len(infos) * nl * len(hs))
 	for i := range infos {
 		info := &infos[i]
 		var values []float64
