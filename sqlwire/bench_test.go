@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"context"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"testing"
 	"time"
 
@@ -154,14 +155,14 @@ func BenchmarkRoundTrip(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	rs, err := forecastTable.scan(ctx, &scanRequest{table: forecastTable, src: src, domains: doms[q.rels[0]]})
-	if err != nil || rs.n == 0 {
-		b.Fatalf("%v rows, %v", rs.n, err)
+	rs, err := livetables.Forecast.Scan(ctx, src, doms[q.rels[0]], nil)
+	if err != nil || rs.N == 0 {
+		b.Fatalf("%v rows, %v", rs.N, err)
 	}
 	b.Run("evaluate", func(b *testing.B) {
 		b.ReportAllocs()
 		for b.Loop() {
-			if _, err := ev.run(ctx, q, nil, []*rowSet{rs}, set, newBudget(&lim)); err != nil {
+			if _, err := ev.run(ctx, q, nil, []*livetables.Rows{rs}, set, newBudget(&lim)); err != nil {
 				b.Fatal(err)
 			}
 		}

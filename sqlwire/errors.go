@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"errors"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 )
 
 // SQLSTATE codes the endpoint sends (Postgres' errcodes.txt).
@@ -100,6 +101,10 @@ func asSQLError(err error) *sqlError {
 	var se *sqlError
 	if errors.As(err, &se) {
 		return se
+	}
+	var te *livetables.Error
+	if errors.As(err, &te) {
+		return &sqlError{Code: te.Code, Severity: "ERROR", Message: te.Message, Hint: te.Hint}
 	}
 	return errorf(codeInternal, "%v", err)
 }

@@ -6,6 +6,7 @@ import (
 	"encoding/hex"
 	"errors"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"strconv"
 	"strings"
 
@@ -63,16 +64,16 @@ func rowsSQL(r *relRef, firstParam int) string {
 	var b strings.Builder
 	b.WriteString("(SELECT ")
 	for i, j := range r.used {
-		c := r.table.cols[j]
+		c := r.table.Columns[j]
 		if i > 0 {
 			b.WriteString(", ")
 		}
-		fmt.Fprintf(&b, "pg_catalog.unnest($%d::pg_catalog.%s[]", firstParam+i, c.sql)
-		if c.sql == "text" {
+		fmt.Fprintf(&b, "pg_catalog.unnest($%d::pg_catalog.%s[]", firstParam+i, c.SQL)
+		if c.SQL == "text" {
 			b.WriteString(` COLLATE "C"`)
 		}
 		b.WriteString(") AS ")
-		b.WriteString(c.name)
+		b.WriteString(c.Name)
 	}
 	b.WriteString(")")
 	return b.String()
@@ -143,7 +144,7 @@ func (ev *evaluator) exec(ctx context.Context, set *settings, sql string, values
 	defer cancel()
 	c, err := ev.pool.Acquire(ctx)
 	if err != nil {
-		return nil, sourceError(ctx, "connect to the sidecar's database", err)
+		return nil, dbError(ctx, err)
 	}
 	defer c.Release()
 	b := &pgconn.Batch{}
@@ -190,6 +191,15 @@ func (ev *evaluator) exec(ctx context.Context, set *settings, sql string, values
 	return res, nil
 }
 
+// dbError is the error of a connection to the sidecar's database that
+// could not be had.
+func dbError(ctx context.Context, err error) error {
+	if ctx.Err() != nil {
+		return statementCanceled(ctx)
+	}
+	return errorf(codeInternal, "connect to the sidecar's database: %v", err)
+}
+
 func (ev *evaluator) failure(ctx context.Context, err error) error {
 	if ctx.Err() != nil {
 		return statementCanceled(ctx)
@@ -229,7 +239,7 @@ func (ev *evaluator) constants(ctx context.Context, p *pushdown, set *settings) 
 }
 
 // run evaluates q over the computed rows.
-func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, rows []*rowSet, set *settings, b *budget) (*result, error) {
+func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, rows []*livetables.Rows, set *settings, b *budget) (*result, error) {
 	sql, err := deparse(q, len(params))
 	if err != nil {
 		return nil, err
@@ -248,9 +258,9 @@ func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, 
 	}
 	for i, r := range q.rels {
 		for _, j := range r.used {
-			c := r.table.cols[j]
-			values = append(values, rows[i].encodeArray(r.table, j, make([]byte, 0, 20+rows[i].n*16)))
-			oids = append(oids, arrayOID[c.sql])
+			c := r.table.Columns[j]
+			values = append(values, rows[i].EncodeArray(j, make([]byte, 0, 20+rows[i].N*16)))
+			oids = append(oids, arrayOID[c.SQL])
 			formats = append(formats, pgtype.BinaryFormatCode)
 		}
 	}
@@ -287,12 +297,12 @@ func (ev *evaluator) describe(ctx context.Context, q *selectStmt, declared []uin
 	oids := append([]uint32(nil), declared...)
 	for _, r := range q.rels {
 		for _, j := range r.used {
-			oids = append(oids, arrayOID[r.table.cols[j].sql])
+			oids = append(oids, arrayOID[r.table.Columns[j].SQL])
 		}
 	}
 	c, err := ev.pool.Acquire(ctx)
 	if err != nil {
-		return nil, nil, sourceError(ctx, "connect to the sidecar's database", err)
+		return nil, nil, dbError(ctx, err)
 	}
 	defer c.Release()
 	sd, err := c.Conn().PgConn().Prepare(ctx, "", sql, oids)

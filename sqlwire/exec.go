@@ -2,6 +2,7 @@ package sqlwire
 
 import (
 	"context"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"sort"
 	"strconv"
 	"strings"
@@ -157,9 +158,9 @@ func (sess *session) query(ctx context.Context, q *selectStmt, params []paramVal
 	if err != nil {
 		return nil, canceledOr(ctx, err)
 	}
-	rows := make([]*rowSet, len(q.rels))
+	rows := make([]*livetables.Rows, len(q.rels))
 	for i, r := range q.rels {
-		if rows[i], err = r.table.scan(ctx, &scanRequest{table: r.table, src: sess.srv.src, domains: doms[r], budget: b}); err != nil {
+		if rows[i], err = r.table.Scan(ctx, sess.srv.src, doms[r], b); err != nil {
 			return nil, canceledOr(ctx, err)
 		}
 	}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"math"
 	"strings"
 	"sync"
@@ -646,7 +647,8 @@ func TestForeignTablesMatchEndpoint(t *testing.T) {
 	ctx := testCtx(t, time.Minute)
 	f := newFixture(t, newMemSource(t, scenarioSeries()))
 	conn := f.analyst(t, ctx)
-	for name, def := range tables {
+	for _, def := range []*livetables.Table{livetables.Forecast, livetables.Backtest, livetables.Series} {
+		name := def.Name
 		rows, err := conn.Query(ctx, `SELECT column_name, data_type FROM information_schema.columns
 WHERE table_schema = 'sidetrend_live' AND table_name = $1 ORDER BY ordinal_position`, name)
 		if err != nil {
@@ -659,8 +661,8 @@ WHERE table_schema = 'sidetrend_live' AND table_name = $1 ORDER BY ordinal_posit
 			got = append(got, c+" "+ty)
 		}
 		var want []string
-		for _, c := range def.cols {
-			want = append(want, c.name+" "+sqlTypeNames[c.sql])
+		for _, c := range def.Columns {
+			want = append(want, c.Name+" "+sqlTypeNames[c.SQL])
 		}
 		if strings.Join(got, ", ") != strings.Join(want, ", ") {
 			t.Errorf("sidetrend_live.%s:\nforeign.sql declares %s\nendpoint serves      %s", name, strings.Join(got, ", "), strings.Join(want, ", "))

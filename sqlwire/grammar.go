@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"errors"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"math"
 	"strconv"
 	"strings"
@@ -34,7 +35,7 @@ type selectStmt struct {
 // relRef is one endpoint table in a SELECT's FROM clause.
 type relRef struct {
 	rv    *pg.RangeVar
-	table *tableDef
+	table *livetables.Table
 	alias string
 	used  []int // the columns the query refers to, in table order; the others are not sent
 }
@@ -342,8 +343,8 @@ func (q *selectStmt) usedColumns() {
 			if rel != "" && rel != r.alias {
 				continue
 			}
-			for j, c := range r.table.cols {
-				if col == "*" || c.name == col {
+			for j, c := range r.table.Columns {
+				if col == "*" || c.Name == col {
 					used[i][j] = true
 				}
 			}
@@ -403,7 +404,7 @@ func (q *selectStmt) usedColumns() {
 		if len(used[i]) == 0 {
 			used[i][0] = true
 		}
-		for j := range r.table.cols {
+		for j := range r.table.Columns {
 			if used[i][j] {
 				r.used = append(r.used, j)
 			}
@@ -502,7 +503,7 @@ func (c *checker) fromItem(n *pg.Node) error {
 
 // endpointTable resolves a table name, refusing catalog queries with a
 // sentence psql users can act on.
-func endpointTable(rv *pg.RangeVar) (*tableDef, error) {
+func endpointTable(rv *pg.RangeVar) (*livetables.Table, error) {
 	served := fmt.Sprintf("the endpoint serves %s.forecast, %s.backtest and %s.series", Schema, Schema, Schema)
 	switch rv.Schemaname {
 	case "pg_catalog", "information_schema":
@@ -515,7 +516,7 @@ func endpointTable(rv *pg.RangeVar) (*tableDef, error) {
 	if rv.Catalogname != "" {
 		return nil, errorf(codeUndefinedTable, "cross-database references are not implemented: %s.%s.%s", rv.Catalogname, rv.Schemaname, rv.Relname)
 	}
-	t, ok := tables[rv.Relname]
+	t, ok := livetables.Lookup(rv.Relname)
 	if !ok {
 		if strings.HasPrefix(rv.Relname, "pg_") {
 			return nil, notSupported("catalog queries (%s) are not supported here: psql's \\d commands do not work against the sidetrend endpoint", rv.Relname).

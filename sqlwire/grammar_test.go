@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"context"
 	"errors"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"strconv"
 	"strings"
 	"testing"
@@ -126,10 +127,17 @@ func TestParseMultipleStatements(t *testing.T) {
 	}
 }
 
+// Positions of the forecast table's parameter columns.
+const (
+	fcTracker = 0
+	fcLambda  = 2
+	fcHorizon = 3
+)
+
 // domainsOf parses a SELECT or cursor declaration and works out the
 // domains of its first table's columns, with the test server evaluating
 // the constants.
-func domainsOf(t *testing.T, sql string, params ...paramVal) []domain {
+func domainsOf(t *testing.T, sql string, params ...paramVal) []livetables.Domain {
 	t.Helper()
 	st, err := parseStatement(sql)
 	if err != nil {
@@ -152,7 +160,7 @@ func domainsOf(t *testing.T, sql string, params ...paramVal) []domain {
 func TestDeparsedShapes(t *testing.T) {
 	cases := []struct {
 		sql      string
-		horizons string // the horizon domain as horizons() reads it, or an error code
+		horizons string // the horizon domain as livetables.Horizons() reads it, or an error code
 		lambdas  string
 		tracker  string
 	}{
@@ -188,7 +196,7 @@ func TestDeparsedShapes(t *testing.T) {
 		if got := horizonString(d[fcHorizon]); got != c.horizons {
 			t.Errorf("%s\nhorizons %s, want %s", c.sql, got, c.horizons)
 		}
-		ls, pinned, err := lambdas(d[fcLambda])
+		ls, pinned, err := livetables.Lambdas(d[fcLambda])
 		got := "stored"
 		if err != nil {
 			got = err.Error()
@@ -199,7 +207,7 @@ func TestDeparsedShapes(t *testing.T) {
 			t.Errorf("%s\nlambdas %s, want %s", c.sql, got, c.lambdas)
 		}
 		tr := "any"
-		if set, ok := d[fcTracker].textSet(); ok {
+		if set, ok := d[fcTracker].TextSet(); ok {
 			tr = strings.Join(set, ",")
 		}
 		if tr != c.tracker {
@@ -208,8 +216,8 @@ func TestDeparsedShapes(t *testing.T) {
 	}
 }
 
-func horizonString(d domain) string {
-	hs, err := horizons(d)
+func horizonString(d livetables.Domain) string {
+	hs, err := livetables.Horizons(d)
 	if err != nil {
 		return asSQLError(err).Code
 	}
@@ -292,11 +300,10 @@ func TestRefusals(t *testing.T) {
 }
 
 func code(err error) string {
-	var se *sqlError
-	if errors.As(err, &se) {
-		return se.Code
+	if err == nil {
+		return ""
 	}
-	return ""
+	return asSQLError(err).Code
 }
 
 func TestHorizonRequired(t *testing.T) {
@@ -305,15 +312,15 @@ func TestHorizonRequired(t *testing.T) {
 		"SELECT forecast FROM sidetrend_live.forecast WHERE ((horizon > 3))",
 		"SELECT forecast FROM sidetrend_live.forecast WHERE (((horizon < 3) OR (tracker = 'a')))",
 	} {
-		_, err := horizons(domainsOf(t, sql)[fcHorizon])
+		_, err := livetables.Horizons(domainsOf(t, sql)[fcHorizon])
 		if code(err) != codeFeatureNotSupported || !strings.Contains(err.Error(), "WHERE horizon <= 30") {
 			t.Errorf("%s: got %v, want the 0A000 error that says to add WHERE horizon <= 30", sql, err)
 		}
 	}
-	if _, err := horizons(domainsOf(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 10001")[fcHorizon]); code(err) != codeInvalidParameter {
+	if _, err := livetables.Horizons(domainsOf(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 10001")[fcHorizon]); code(err) != codeInvalidParameter {
 		t.Errorf("horizon <= 10001: got %v, want 22023", err)
 	}
-	if _, _, err := lambdas(domainsOf(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")[fcLambda]); code(err) != codeInvalidParameter || !strings.Contains(err.Error(), "(0, 1]") {
+	if _, _, err := livetables.Lambdas(domainsOf(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")[fcLambda]); code(err) != codeInvalidParameter || !strings.Contains(err.Error(), "(0, 1]") {
 		t.Errorf("lambda 1.3: got %v, want 22023 saying lambda must be in (0, 1]", err)
 	}
 }

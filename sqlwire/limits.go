@@ -183,10 +183,11 @@ type budget struct {
 
 func newBudget(lim *Limits) *budget { return &budget{lim: lim} }
 
-// expect checks, before a scan computes anything, that its rows (an upper
+// Expect checks, before a scan computes anything, that its rows (an upper
 // bound, described by what), each holding about rowBytes until Postgres
-// has them, fit the row and memory limits, and counts them.
-func (b *budget) expect(rows, rowBytes int64, what string) error {
+// has them, fit the row and memory limits, and counts them
+// (livetables.Budget).
+func (b *budget) Expect(rows, rowBytes int64, what string) error {
 	if b == nil {
 		return nil
 	}

@@ -4,12 +4,13 @@ import (
 	"context"
 	"math"
 	"math/big"
-	"sort"
 	"strconv"
 
 	"github.com/jackc/pgx/v5/pgtype"
 	pg "github.com/pganalyze/pg_query_go/v6"
 	"google.golang.org/protobuf/proto"
+
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 )
 
 // From the conditions of a SELECT, the endpoint works out what each table
@@ -21,23 +22,6 @@ import (
 // are evaluated by that Postgres too, in one query, so that a bound means
 // what Postgres means by it.
 
-// domain is what the conditions let one parameter column be: everything,
-// a finite set (strings or exact numbers), or an interval of numbers with
-// ends open, closed or absent.
-type domain struct {
-	all      bool
-	interval bool
-	strs     []string   // finite set of a text column, sorted
-	nums     []*big.Rat // finite set of a numeric column, sorted
-	lo, hi   *big.Rat
-	loInc    bool
-	hiInc    bool
-}
-
-var domainAll = domain{all: true}
-
-func (d domain) empty() bool { return !d.all && !d.interval && len(d.strs) == 0 && len(d.nums) == 0 }
-
 // bound is one constant side of a condition, evaluated by Postgres.
 type bound struct {
 	null    bool
@@ -46,15 +30,6 @@ type bound struct {
 	arr     []bound
 	isArray bool
 }
-
-// colKind is how a parameter column compares.
-type colKind uint8
-
-const (
-	kText colKind = iota
-	kFloat
-	kInt
-)
 
 // pushdown gathers, for each endpoint relation of a SELECT, the conditions
 // that may narrow it, and then their domains.
@@ -65,7 +40,7 @@ type pushdown struct {
 	clauses map[*relRef][]*pg.Node
 	// The constant sides to evaluate, in order, and their values.
 	consts []*pg.Node
-	kinds  []colKind
+	kinds  []livetables.Kind
 	arrays []bool
 	index  map[*pg.Node]int
 	values []bound
@@ -156,7 +131,7 @@ func (p *pushdown) column(n *pg.Node, r *relRef, col string) bool {
 			return false
 		}
 		for _, o := range p.q.rels {
-			if o != r && o.table.column(col) >= 0 {
+			if o != r && o.table.Column(col) >= 0 {
 				return false // ambiguous: leave it to Postgres
 			}
 		}
@@ -264,44 +239,44 @@ func mirror(op string) string {
 	return op
 }
 
-// domainOf is the domain of column col of r under condition n. With
+// domainOf is the livetables.Domain of column col of r under condition n. With
 // collect set it only records the constants to evaluate.
-func (p *pushdown) domainOf(n *pg.Node, r *relRef, col string, kind colKind, collect bool) (domain, error) {
+func (p *pushdown) domainOf(n *pg.Node, r *relRef, col string, kind livetables.Kind, collect bool) (livetables.Domain, error) {
 	switch {
 	case n.GetBoolExpr() != nil:
 		b := n.GetBoolExpr()
 		if b.Boolop == pg.BoolExprType_NOT_EXPR {
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
-		var d domain
+		var d livetables.Domain
 		if b.Boolop == pg.BoolExprType_AND_EXPR {
-			d = domainAll
+			d = livetables.Everything
 		}
 		for _, a := range b.Args {
 			da, err := p.domainOf(a, r, col, kind, collect)
 			if err != nil {
-				return domain{}, err
+				return livetables.Domain{}, err
 			}
 			if b.Boolop == pg.BoolExprType_AND_EXPR {
-				d = intersect(d, da)
+				d = livetables.Intersect(d, da)
 			} else {
-				d = union(d, da)
+				d = livetables.Union(d, da)
 			}
 		}
 		return d, nil
 	case n.GetNullTest() != nil:
 		t := n.GetNullTest()
 		if t.Nulltesttype == pg.NullTestType_IS_NULL && p.column(t.Arg, r, col) {
-			return domain{}, nil // parameter columns are never NULL
+			return livetables.Domain{}, nil // parameter columns are never NULL
 		}
-		return domainAll, nil
+		return livetables.Everything, nil
 	case n.GetAExpr() != nil:
 		return p.compare(n.GetAExpr(), r, col, kind, collect)
 	}
-	return domainAll, nil
+	return livetables.Everything, nil
 }
 
-func (p *pushdown) compare(a *pg.A_Expr, r *relRef, col string, kind colKind, collect bool) (domain, error) {
+func (p *pushdown) compare(a *pg.A_Expr, r *relRef, col string, kind livetables.Kind, collect bool) (livetables.Domain, error) {
 	op := operator(a)
 	switch a.Kind {
 	case pg.A_Expr_Kind_AEXPR_OP, pg.A_Expr_Kind_AEXPR_NOT_DISTINCT:
@@ -311,70 +286,70 @@ func (p *pushdown) compare(a *pg.A_Expr, r *relRef, col string, kind colKind, co
 		other := a.Rexpr
 		if !p.column(a.Lexpr, r, col) {
 			if !p.column(a.Rexpr, r, col) {
-				return domainAll, nil
+				return livetables.Everything, nil
 			}
 			other, op = a.Lexpr, mirror(op)
 		}
 		switch op {
 		case "=", "<", "<=", ">", ">=":
 		default:
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
-		if kind == kText && op != "=" || !constant(other) {
-			return domainAll, nil
+		if kind == livetables.Text && op != "=" || !constant(other) {
+			return livetables.Everything, nil
 		}
 		return p.constDomain(op, other, kind, false, collect)
 	case pg.A_Expr_Kind_AEXPR_OP_ANY:
 		if op != "=" || !p.column(a.Lexpr, r, col) || !constant(a.Rexpr) {
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
 		return p.constDomain("=", a.Rexpr, kind, true, collect)
 	case pg.A_Expr_Kind_AEXPR_IN:
 		l := a.Rexpr.GetList()
 		if op != "=" || l == nil || !p.column(a.Lexpr, r, col) {
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
 		if err := p.lim.checkInList(len(l.Items)); err != nil {
-			return domain{}, err
+			return livetables.Domain{}, err
 		}
-		d := domain{}
+		d := livetables.Domain{}
 		for _, it := range l.Items {
 			if !constant(it) {
-				return domainAll, nil
+				return livetables.Everything, nil
 			}
 			di, err := p.constDomain("=", it, kind, false, collect)
 			if err != nil {
-				return domain{}, err
+				return livetables.Domain{}, err
 			}
-			d = union(d, di)
+			d = livetables.Union(d, di)
 		}
 		return d, nil
 	case pg.A_Expr_Kind_AEXPR_BETWEEN:
 		l := a.Rexpr.GetList()
-		if kind == kText || l == nil || len(l.Items) != 2 || !p.column(a.Lexpr, r, col) ||
+		if kind == livetables.Text || l == nil || len(l.Items) != 2 || !p.column(a.Lexpr, r, col) ||
 			!constant(l.Items[0]) || !constant(l.Items[1]) {
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
 		lo, err := p.constDomain(">=", l.Items[0], kind, false, collect)
 		if err != nil {
-			return domain{}, err
+			return livetables.Domain{}, err
 		}
 		hi, err := p.constDomain("<=", l.Items[1], kind, false, collect)
 		if err != nil {
-			return domain{}, err
+			return livetables.Domain{}, err
 		}
-		return intersect(lo, hi), nil
+		return livetables.Intersect(lo, hi), nil
 	}
-	return domainAll, nil
+	return livetables.Everything, nil
 }
 
-// constDomain is the domain of "column op value". While collecting it
+// constDomain is the livetables.Domain of "column op value". While collecting it
 // records the value's expression and answers "everything".
-func (p *pushdown) constDomain(op string, n *pg.Node, kind colKind, array, collect bool) (domain, error) {
+func (p *pushdown) constDomain(op string, n *pg.Node, kind livetables.Kind, array, collect bool) (livetables.Domain, error) {
 	if collect {
 		if b, ok := literal(n, kind); ok && !array {
 			p.literals[n] = b
-			return domainAll, nil
+			return livetables.Everything, nil
 		}
 		if _, ok := p.index[n]; !ok {
 			p.index[n] = len(p.consts)
@@ -382,7 +357,7 @@ func (p *pushdown) constDomain(op string, n *pg.Node, kind colKind, array, colle
 			p.kinds = append(p.kinds, kind)
 			p.arrays = append(p.arrays, array)
 		}
-		return domainAll, nil
+		return livetables.Everything, nil
 	}
 	v, ok := p.literals[n]
 	if !ok {
@@ -392,48 +367,48 @@ func (p *pushdown) constDomain(op string, n *pg.Node, kind colKind, array, colle
 		return pointDomain(op, v, kind), nil
 	}
 	if v.null {
-		return domain{}, nil
+		return livetables.Domain{}, nil
 	}
 	if !v.isArray {
-		return domainAll, nil
+		return livetables.Everything, nil
 	}
 	if err := p.lim.checkInList(len(v.arr)); err != nil {
-		return domain{}, err
+		return livetables.Domain{}, err
 	}
-	d := domain{}
+	d := livetables.Domain{}
 	for _, e := range v.arr {
-		d = union(d, pointDomain("=", e, kind))
+		d = livetables.Union(d, pointDomain("=", e, kind))
 	}
 	return d, nil
 }
 
-func pointDomain(op string, v bound, kind colKind) domain {
+func pointDomain(op string, v bound, kind livetables.Kind) livetables.Domain {
 	if v.null {
-		return domain{} // a comparison with NULL is never true
+		return livetables.Domain{} // a comparison with NULL is never true
 	}
-	if kind == kText {
+	if kind == livetables.Text {
 		if v.str == nil || op != "=" {
-			return domainAll
+			return livetables.Everything
 		}
-		return domain{strs: []string{*v.str}}
+		return livetables.Domain{Strs: []string{*v.str}}
 	}
 	if v.num == nil {
-		return domainAll // NaN, infinities, text: leave them to Postgres
+		return livetables.Everything // NaN, infinities, text: leave them to Postgres
 	}
 	r := v.num
 	switch op {
 	case "=":
-		return domain{nums: []*big.Rat{r}}
+		return livetables.Domain{Nums: []*big.Rat{r}}
 	case "<":
-		return domain{interval: true, hi: r}
+		return livetables.Domain{Interval: true, Hi: r}
 	case "<=":
-		return domain{interval: true, hi: r, hiInc: true}
+		return livetables.Domain{Interval: true, Hi: r, HiInc: true}
 	case ">":
-		return domain{interval: true, lo: r}
+		return livetables.Domain{Interval: true, Lo: r}
 	case ">=":
-		return domain{interval: true, lo: r, loInc: true}
+		return livetables.Domain{Interval: true, Lo: r, LoInc: true}
 	}
-	return domainAll
+	return livetables.Everything
 }
 
 // literal reads a plain literal the way Postgres reads it when it is
@@ -441,7 +416,7 @@ func pointDomain(op string, v bound, kind colKind) domain {
 // number (numeric; a float8 column compares in float8, whose input rounds
 // to the nearest double as big.Rat's Float64 does), a string literal
 // compared with a text column is that text. Anything else goes to Postgres.
-func literal(n *pg.Node, kind colKind) (bound, bool) {
+func literal(n *pg.Node, kind livetables.Kind) (bound, bool) {
 	c := n.GetAConst()
 	if c == nil {
 		return bound{}, false
@@ -449,17 +424,17 @@ func literal(n *pg.Node, kind colKind) (bound, bool) {
 	switch {
 	case c.Isnull:
 		return bound{null: true}, true
-	case c.GetSval() != nil && kind == kText:
+	case c.GetSval() != nil && kind == livetables.Text:
 		s := c.GetSval().Sval
 		return bound{str: &s}, true
-	case c.GetIval() != nil && kind != kText:
+	case c.GetIval() != nil && kind != livetables.Text:
 		return bound{num: new(big.Rat).SetInt64(int64(c.GetIval().Ival))}, true
-	case c.GetFval() != nil && kind != kText:
+	case c.GetFval() != nil && kind != livetables.Text:
 		r, ok := new(big.Rat).SetString(c.GetFval().Fval)
 		if !ok {
 			return bound{}, false
 		}
-		if kind == kFloat {
+		if kind == livetables.Float {
 			f, _ := r.Float64()
 			return floatBound(f), true
 		}
@@ -468,14 +443,14 @@ func literal(n *pg.Node, kind colKind) (bound, bool) {
 	return bound{}, false
 }
 
-// domains evaluates the constants and returns, per relation, the domain
+// domains evaluates the constants and returns, per relation, the livetables.Domain
 // of each of its parameter columns.
-func (p *pushdown) domains(ctx context.Context, ev *evaluator, set *settings) (map[*relRef][]domain, error) {
+func (p *pushdown) domains(ctx context.Context, ev *evaluator, set *settings) (map[*relRef][]livetables.Domain, error) {
 	for _, r := range p.q.rels {
-		for _, c := range r.table.cols {
-			if c.param {
+		for _, c := range r.table.Columns {
+			if c.Param {
 				for _, cl := range p.clauses[r] {
-					if _, err := p.domainOf(cl, r, c.name, c.kind, true); err != nil {
+					if _, err := p.domainOf(cl, r, c.Name, c.Kind, true); err != nil {
 						return nil, err
 					}
 				}
@@ -489,20 +464,20 @@ func (p *pushdown) domains(ctx context.Context, ev *evaluator, set *settings) (m
 		}
 		p.values = vals
 	}
-	out := map[*relRef][]domain{}
+	out := map[*relRef][]livetables.Domain{}
 	for _, r := range p.q.rels {
-		ds := make([]domain, len(r.table.cols))
-		for i, c := range r.table.cols {
-			ds[i] = domainAll
-			if !c.param {
+		ds := make([]livetables.Domain, len(r.table.Columns))
+		for i, c := range r.table.Columns {
+			ds[i] = livetables.Everything
+			if !c.Param {
 				continue
 			}
 			for _, cl := range p.clauses[r] {
-				d, err := p.domainOf(cl, r, c.name, c.kind, false)
+				d, err := p.domainOf(cl, r, c.Name, c.Kind, false)
 				if err != nil {
 					return nil, err
 				}
-				ds[i] = intersect(ds[i], d)
+				ds[i] = livetables.Intersect(ds[i], d)
 			}
 		}
 		out[r] = ds
@@ -521,11 +496,11 @@ func (p *pushdown) constQuery() *pg.ParseResult {
 		x = p.inlineParams(x)
 		var typ string
 		switch p.kinds[i] {
-		case kText:
+		case livetables.Text:
 			typ = "text"
-		case kFloat:
+		case livetables.Float:
 			typ = "float8"
-		case kInt:
+		case livetables.Int:
 			if untyped(x) {
 				typ = "int4"
 			}
@@ -709,147 +684,6 @@ func floatBound(f float64) bound {
 		return bound{}
 	}
 	return bound{num: new(big.Rat).SetFloat64(f)}
-}
-
-// Domain algebra.
-
-func intersect(a, b domain) domain {
-	switch {
-	case a.all:
-		return b
-	case b.all:
-		return a
-	case a.empty() || b.empty():
-		return domain{}
-	case a.strs != nil || b.strs != nil:
-		var out []string
-		for _, s := range a.strs {
-			if containsString(b.strs, s) {
-				out = append(out, s)
-			}
-		}
-		return domain{strs: out}
-	case a.interval && b.interval:
-		d := a
-		if b.lo != nil && (d.lo == nil || b.lo.Cmp(d.lo) > 0 || b.lo.Cmp(d.lo) == 0 && !b.loInc) {
-			d.lo, d.loInc = b.lo, b.loInc
-		}
-		if b.hi != nil && (d.hi == nil || b.hi.Cmp(d.hi) < 0 || b.hi.Cmp(d.hi) == 0 && !b.hiInc) {
-			d.hi, d.hiInc = b.hi, b.hiInc
-		}
-		if d.lo != nil && d.hi != nil {
-			if c := d.lo.Cmp(d.hi); c > 0 || c == 0 && !(d.loInc && d.hiInc) {
-				return domain{}
-			}
-		}
-		return d
-	case a.interval:
-		return domain{nums: filterPoints(b.nums, a)}
-	case b.interval:
-		return domain{nums: filterPoints(a.nums, b)}
-	}
-	return domain{nums: filterPoints(a.nums, domain{nums: b.nums})}
-}
-
-func union(a, b domain) domain {
-	switch {
-	case a.all || b.all:
-		return domainAll
-	case a.empty():
-		return b
-	case b.empty():
-		return a
-	case a.strs != nil || b.strs != nil:
-		out := append(append([]string(nil), a.strs...), b.strs...)
-		sort.Strings(out)
-		return domain{strs: compactStrings(out)}
-	case !a.interval && !b.interval:
-		all := append(append([]*big.Rat(nil), a.nums...), b.nums...)
-		sort.Slice(all, func(i, j int) bool { return all[i].Cmp(all[j]) < 0 })
-		var out []*big.Rat
-		for i, r := range all {
-			if i == 0 || r.Cmp(all[i-1]) != 0 {
-				out = append(out, r)
-			}
-		}
-		return domain{nums: out}
-	}
-	// The hull of the two.
-	ia, ib := hull(a), hull(b)
-	d := domain{interval: true}
-	if ia.lo != nil && ib.lo != nil {
-		d.lo, d.loInc = ia.lo, ia.loInc
-		if c := ib.lo.Cmp(ia.lo); c < 0 || c == 0 && ib.loInc {
-			d.lo, d.loInc = ib.lo, ib.loInc
-		}
-	}
-	if ia.hi != nil && ib.hi != nil {
-		d.hi, d.hiInc = ia.hi, ia.hiInc
-		if c := ib.hi.Cmp(ia.hi); c > 0 || c == 0 && ib.hiInc {
-			d.hi, d.hiInc = ib.hi, ib.hiInc
-		}
-	}
-	return d
-}
-
-func compactStrings(s []string) []string {
-	out := s[:0]
-	for i, x := range s {
-		if i == 0 || x != s[i-1] {
-			out = append(out, x)
-		}
-	}
-	return out
-}
-
-// hull is the closed hull of a non-empty finite set, or the interval.
-func hull(d domain) domain {
-	if d.interval {
-		return d
-	}
-	return domain{interval: true, lo: d.nums[0], hi: d.nums[len(d.nums)-1], loInc: true, hiInc: true}
-}
-
-// filterPoints keeps the points inside an interval, or in a finite set.
-func filterPoints(pts []*big.Rat, in domain) []*big.Rat {
-	out := []*big.Rat{}
-	for _, r := range pts {
-		if in.contains(r) {
-			out = append(out, r)
-		}
-	}
-	return out
-}
-
-func (d domain) contains(r *big.Rat) bool {
-	if !d.interval {
-		i := sort.Search(len(d.nums), func(i int) bool { return d.nums[i].Cmp(r) >= 0 })
-		return i < len(d.nums) && d.nums[i].Cmp(r) == 0
-	}
-	if d.lo != nil {
-		if c := r.Cmp(d.lo); c < 0 || c == 0 && !d.loInc {
-			return false
-		}
-	}
-	if d.hi != nil {
-		if c := r.Cmp(d.hi); c > 0 || c == 0 && !d.hiInc {
-			return false
-		}
-	}
-	return true
-}
-
-func containsString(sorted []string, s string) bool {
-	i := sort.SearchStrings(sorted, s)
-	return i < len(sorted) && sorted[i] == s
-}
-
-// textSet returns the finite set of strings a text domain allows.
-func (d domain) textSet() ([]string, bool) {
-	if d.all {
-		return nil, false
-	}
-	return d.strs, true
 }
 
 func ratString(r *big.Rat) string {

@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"bytes"
 	"context"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"math/big"
 	"testing"
 
@@ -17,43 +18,30 @@ func ratOf(f float64) *big.Rat { return new(big.Rat).SetFloat64(f) }
 func TestEncodeArray(t *testing.T) {
 	ctx := context.Background()
 	src := newMemSource(t, scenarioSeries())
-	h := domain{nums: nil, interval: true, hi: ratOf(3), hiInc: true}
-	for _, tab := range []*tableDef{forecastTable, backtestTable, seriesTable} {
-		ds := make([]domain, len(tab.cols))
+	h := livetables.Domain{Interval: true, Hi: ratOf(3), HiInc: true}
+	for _, tab := range []*livetables.Table{livetables.Forecast, livetables.Backtest, livetables.Series} {
+		ds := make([]livetables.Domain, len(tab.Columns))
 		for i := range ds {
-			ds[i] = domainAll
+			ds[i] = livetables.Everything
 		}
-		if tab == forecastTable {
+		if tab == livetables.Forecast {
 			ds[fcHorizon] = h
 		}
-		if tab == backtestTable {
-			ds[2] = domain{nums: []*big.Rat{ratOf(0.9)}}
+		if tab == livetables.Backtest {
+			ds[2] = livetables.Domain{Nums: []*big.Rat{ratOf(0.9)}}
 		}
-		rs, err := tab.scan(ctx, &scanRequest{table: tab, src: src, domains: ds})
-		if err != nil || rs.n == 0 {
-			t.Fatalf("%s: %d rows, %v", tab.name, rs.n, err)
+		rs, err := tab.Scan(ctx, src, ds, nil)
+		if err != nil || rs.N == 0 {
+			t.Fatalf("%s: %d rows, %v", tab.Name, rs.N, err)
 		}
-		for i, c := range tab.cols {
-			k := rs.slots[i]
-			var v any
-			switch c.sql {
-			case "text":
-				v = rs.text[k]
-			case "float8":
-				v = rs.f8[k]
-			case "int4":
-				v = rs.i4[k]
-			case "int8":
-				v = rs.i8[k]
-			default:
-				v = rs.ts[k]
-			}
-			want, err := typeMap.Encode(arrayOID[c.sql], pgtype.BinaryFormatCode, v, nil)
+		for i, c := range tab.Columns {
+			v := rs.Values(i)
+			want, err := typeMap.Encode(arrayOID[c.SQL], pgtype.BinaryFormatCode, v, nil)
 			if err != nil {
 				t.Fatal(err)
 			}
-			if got := rs.encodeArray(tab, i, nil); !bytes.Equal(got, want) {
-				t.Errorf("%s.%s: encoded %x, pgx encodes %x", tab.name, c.name, got[:min(len(got), 64)], want[:min(len(want), 64)])
+			if got := rs.EncodeArray(i, nil); !bytes.Equal(got, want) {
+				t.Errorf("%s.%s: encoded %x, pgx encodes %x", tab.Name, c.Name, got[:min(len(got), 64)], want[:min(len(want), 64)])
 			}
 		}
 	}
