@@ -544,7 +544,7 @@ var allowedFunctions = map[string]bool{
 	"sqrt": true, "cbrt": true, "exp": true, "ln": true, "log": true, "log10": true, "power": true, "pow": true, "mod": true,
 	"div": true, "float8": true, "float4": true, "int2": true, "int4": true, "int8": true, "numeric": true, "text": true,
 	"lower": true, "upper": true, "length": true, "char_length": true, "character_length": true, "octet_length": true,
-	"substr": true, "substring": true, "btrim": true, "ltrim": true, "rtrim": true, "replace": true, "repeat": true,
+	"substr": true, "substring": true, "btrim": true, "ltrim": true, "rtrim": true, "replace": true,
 	"concat": true, "concat_ws": true, "left": true, "right": true, "starts_with": true, "strpos": true, "position": true,
 	"like_escape": true, "similar_to_escape": true,
 	"date_trunc": true, "date_part": true, "extract": true, "timezone": true, "isfinite": true, "make_date": true,

@@ -196,9 +196,9 @@ func TestStatementMemoryLimit(t *testing.T) {
 	if n := values.Load(); n != 0 {
 		t.Errorf("the refused sort read the values of %d series, want none", n)
 	}
-	// The result is held too: 4,000 computed rows fit, their 4,000 rows
-	// of every column as text do not.
-	_, err = execAll(ctx, c, `SELECT *, tracker || series_key || repeat('x', 200) FROM sidetrend_live.forecast
+	// The result is held too: 4,000 computed rows fit, 4,000 rows of
+	// every column four times over do not.
+	_, err = execAll(ctx, c, `SELECT *, *, *, * FROM sidetrend_live.forecast
 		WHERE series_key = 'market' AND horizon <= 4000`)
 	pe = pgErr(t, err, codeOutOfMemory, "result of 4,000 wide rows")
 	if !strings.Contains(pe.Message, "the result (over ") {
