@@ -107,10 +107,20 @@ const fdwCursor = `DECLARE c1 CURSOR FOR
 SELECT tracker, series_key, lambda, horizon, forecast, lower95, upper95 FROM sidetrend_live.forecast WHERE ((tracker = 'bakery_sales'::text)) AND ((horizon <= 30)) AND ((lambda = ANY ('{0.8,0.9}'::double precision[]))) ORDER BY horizon ASC NULLS LAST LIMIT 10::bigint`
 
 // BenchmarkParse is Postgres' grammar (WebAssembly) and the whitelist on
-// the statement above; Deparse writes the tree back as the evaluation query.
+// the statement above, and the same text from the parse cache; deparse
+// writes the tree back as the evaluation query (once per statement and
+// number of parameters: evalSQL keeps it).
 func BenchmarkParse(b *testing.B) {
 	warmGrammar()
 	b.Run("parse", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := parseUncached(fdwCursor); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+	b.Run("cached", func(b *testing.B) {
 		b.ReportAllocs()
 		for b.Loop() {
 			if _, err := parseStatement(fdwCursor); err != nil {

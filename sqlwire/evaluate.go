@@ -240,7 +240,7 @@ func (ev *evaluator) constants(ctx context.Context, p *pushdown, set *settings) 
 
 // run evaluates q over the computed rows.
 func (ev *evaluator) run(ctx context.Context, q *selectStmt, params []paramVal, rows []*livetables.Rows, set *settings, b *budget) (*result, error) {
-	sql, err := deparse(q, len(params))
+	sql, err := q.evalSQL(len(params))
 	if err != nil {
 		return nil, err
 	}
@@ -290,7 +290,7 @@ func fieldsOf(fds []pgconn.FieldDescription) []pgproto3.FieldDescription {
 // describe asks Postgres for the parameter types and result columns of q
 // without computing anything: the tables stand in with no rows.
 func (ev *evaluator) describe(ctx context.Context, q *selectStmt, declared []uint32) ([]uint32, []pgproto3.FieldDescription, error) {
-	sql, err := deparse(q, len(declared))
+	sql, err := q.evalSQL(len(declared))
 	if err != nil {
 		return nil, nil, err
 	}

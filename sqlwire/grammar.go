@@ -30,6 +30,30 @@ type selectStmt struct {
 	sel      *pg.SelectStmt
 	rels     []*relRef
 	maxParam int
+
+	// The statement may be shared through the parse cache: the tree is
+	// read only, except by deparse under mu, which keeps its result per
+	// number of parameters.
+	mu     sync.Mutex
+	sqlFor map[int]string
+}
+
+// evalSQL is the evaluation query of q for nparams client parameters.
+func (q *selectStmt) evalSQL(nparams int) (string, error) {
+	q.mu.Lock()
+	defer q.mu.Unlock()
+	if sql, ok := q.sqlFor[nparams]; ok {
+		return sql, nil
+	}
+	sql, err := deparse(q, nparams)
+	if err != nil {
+		return "", err
+	}
+	if q.sqlFor == nil {
+		q.sqlFor = map[int]string{}
+	}
+	q.sqlFor[nparams] = sql
+	return sql, nil
 }
 
 // relRef is one endpoint table in a SELECT's FROM clause.
@@ -127,8 +151,39 @@ func deparseTree(tree *pg.ParseResult) (string, error) {
 // warmGrammar compiles the parser's module ahead of the first statement.
 func warmGrammar() { parseTree("SELECT 1") }
 
+// parsed caches what statements parse to, by their text: postgres_fdw sends
+// the same DECLARE for every scan of the same query. Statements are
+// immutable once made (selectStmt guards its one mutable part), so
+// sessions share them. The cache is emptied when it is full.
+var parsed = struct {
+	sync.Mutex
+	m map[string][]stmt
+}{m: map[string][]stmt{}}
+
+const parsedMax = 1024
+
 // parseStatements parses a simple-protocol Query string.
 func parseStatements(sql string) ([]stmt, error) {
+	parsed.Lock()
+	stmts, ok := parsed.m[sql]
+	parsed.Unlock()
+	if ok {
+		return stmts, nil
+	}
+	stmts, err := parseUncached(sql)
+	if err != nil {
+		return nil, err
+	}
+	parsed.Lock()
+	if len(parsed.m) >= parsedMax {
+		parsed.m = map[string][]stmt{}
+	}
+	parsed.m[sql] = stmts
+	parsed.Unlock()
+	return stmts, nil
+}
+
+func parseUncached(sql string) ([]stmt, error) {
 	tree, err := parseTree(sql)
 	if err != nil {
 		return nil, syntaxError(err)
