@@ -165,7 +165,7 @@ func BenchmarkRoundTrip(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	rs, err := livetables.Forecast.Scan(ctx, src, doms[q.rels[0]], nil)
+	rs, err := livetables.Forecast.Scan(ctx, src, doms[q.rels[0]], q.rels[0].used, nil)
 	if err != nil || rs.N == 0 {
 		b.Fatalf("%v rows, %v", rs.N, err)
 	}

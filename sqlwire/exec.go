@@ -160,7 +160,7 @@ func (sess *session) query(ctx context.Context, q *selectStmt, params []paramVal
 	}
 	rows := make([]*livetables.Rows, len(q.rels))
 	for i, r := range q.rels {
-		if rows[i], err = r.table.Scan(ctx, sess.srv.src, doms[r], b); err != nil {
+		if rows[i], err = r.table.Scan(ctx, sess.srv.src, doms[r], r.used, b); err != nil {
 			return nil, canceledOr(ctx, err)
 		}
 	}

@@ -30,7 +30,7 @@ func TestEncodeArray(t *testing.T) {
 		if tab == livetables.Backtest {
 			ds[2] = livetables.Domain{Nums: []*big.Rat{ratOf(0.9)}}
 		}
-		rs, err := tab.Scan(ctx, src, ds, nil)
+		rs, err := tab.Scan(ctx, src, ds, nil, nil)
 		if err != nil || rs.N == 0 {
 			t.Fatalf("%s: %d rows, %v", tab.Name, rs.N, err)
 		}

@@ -67,6 +67,7 @@ type scanRequest struct {
 	table   *Table
 	src     Source
 	domains []Domain
+	used    []int  // the columns to fill; nil: all
 	budget  Budget // nil: unbounded
 }
 
@@ -217,8 +218,23 @@ func Lookup(name string) (*Table, bool) {
 
 // Scan computes the rows the domains (one per column, meaningful for the
 // parameter columns) allow, counting them against b before it computes.
-func (t *Table) Scan(ctx context.Context, src Source, domains []Domain, b Budget) (*Rows, error) {
-	return t.scan(ctx, &scanRequest{table: t, src: src, domains: domains, budget: b})
+// Only the columns in used (positions, nil for all) need be filled: a
+// table may leave the others empty.
+func (t *Table) Scan(ctx context.Context, src Source, domains []Domain, used []int, b Budget) (*Rows, error) {
+	return t.scan(ctx, &scanRequest{table: t, src: src, domains: domains, used: used, budget: b})
+}
+
+// wants reports whether column i is to be filled.
+func (req *scanRequest) wants(i int) bool {
+	if req.used == nil {
+		return true
+	}
+	for _, j := range req.used {
+		if j == i {
+			return true
+		}
+	}
+	return false
 }
 
 // Budget bounds what a statement computes: Expect is asked, before a scan
@@ -523,6 +539,10 @@ func scanForecast(ctx context.Context, req *scanRequest) (*Rows, error) {
 	}
 	maxH := hs[len(hs)-1]
 	rs.grow(len(infos) * nl * len(hs))
+	want := make([]bool, len(req.table.Columns))
+	for i := range want {
+		want[i] = req.wants(i)
+	}
 	for i := range infos {
 		info := &infos[i]
 		var values []float64
@@ -561,20 +581,25 @@ func scanForecast(ctx context.Context, req *scanRequest) (*Rows, error) {
 				return nil, errorf(codeInternal, "forecast series %q/%q: %v", info.Tracker, info.Key, err)
 			}
 			hasCal := info.Calendar.Width() != (calendar.Width{})
+			values := [...][]float64{fc.Forecast, fc.Lower80, fc.Upper80, fc.Lower95, fc.Upper95,
+				fc.CumForecast, fc.CumLower95, fc.CumUpper95}
 			for _, h := range hs {
 				k := h - 1
 				rs.text[0] = append(rs.text[0], info.Tracker)
 				rs.text[1] = append(rs.text[1], info.Key)
 				rs.i4[0] = append(rs.i4[0], int32(h))
-				var ts pgtype.Timestamptz
-				if hasCal {
-					ts = pgtype.Timestamptz{Time: info.Calendar.Start(info.LastIndex + int64(h)), Valid: true}
-				}
-				rs.ts[0] = append(rs.ts[0], ts)
 				rs.f8[0] = append(rs.f8[0], pgtype.Float8{Float64: lambda, Valid: true})
-				for j, v := range [...]float64{fc.Forecast[k], fc.Lower80[k], fc.Upper80[k], fc.Lower95[k], fc.Upper95[k],
-					fc.CumForecast[k], fc.CumLower95[k], fc.CumUpper95[k]} {
-					rs.f8[1+j] = append(rs.f8[1+j], f8(v))
+				if want[fcPeriodStart] {
+					var ts pgtype.Timestamptz
+					if hasCal {
+						ts = pgtype.Timestamptz{Time: info.Calendar.Start(info.LastIndex + int64(h)), Valid: true}
+					}
+					rs.ts[0] = append(rs.ts[0], ts)
+				}
+				for j, v := range values {
+					if want[fcForecast+j] {
+						rs.f8[1+j] = append(rs.f8[1+j], f8(v[k]))
+					}
 				}
 				rs.N++
 			}
