@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"context"
 	"errors"
+	"math/big"
 	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"strconv"
 	"strings"
@@ -322,5 +323,27 @@ func TestHorizonRequired(t *testing.T) {
 	}
 	if _, _, err := livetables.Lambdas(domainsOf(t, "SELECT forecast FROM sidetrend_live.forecast WHERE horizon <= 3 AND lambda = 1.3")[fcLambda]); code(err) != codeInvalidParameter || !strings.Contains(err.Error(), "(0, 1]") {
 		t.Errorf("lambda 1.3: got %v, want 22023 saying lambda must be in (0, 1]", err)
+	}
+}
+
+// TestLiteralsCompareAsPostgres checks the literals read without a round
+// trip against Postgres' own comparison: a float8 column compares with
+// any number in float8, so lambda <= 0.9::numeric holds for the double
+// nearest 0.9 (which is above 9/10).
+func TestLiteralsCompareAsPostgres(t *testing.T) {
+	near := new(big.Rat).SetFloat64(0.9)
+	for _, sql := range []string{
+		"SELECT * FROM sidetrend_live.backtest WHERE lambda <= 0.9::numeric",
+		"SELECT * FROM sidetrend_live.backtest WHERE lambda <= 0.9",
+		"SELECT * FROM sidetrend_live.backtest WHERE lambda <= 0.9::double precision",
+		"SELECT * FROM sidetrend_live.backtest WHERE lambda <= '0.9'",
+	} {
+		d := domainsOf(t, sql)[fcLambda]
+		if !d.Contains(near) {
+			t.Errorf("%s: domain %+v leaves out the double 0.9", sql, d)
+		}
+	}
+	if d := domainsOf(t, "SELECT * FROM sidetrend_live.forecast WHERE horizon <= 2.5::float8")[fcHorizon]; d.Contains(big.NewRat(3, 1)) || !d.Contains(big.NewRat(2, 1)) {
+		t.Errorf("horizon <= 2.5::float8: %+v", d)
 	}
 }

@@ -415,30 +415,56 @@ func pointDomain(op string, v bound, kind livetables.Kind) livetables.Domain {
 // compared with a column of kind: an integer or decimal literal is an exact
 // number (numeric; a float8 column compares in float8, whose input rounds
 // to the nearest double as big.Rat's Float64 does), a string literal
-// compared with a text column is that text. Anything else goes to Postgres.
+// compared with a text column is that text. The casts postgres_fdw writes
+// after a constant (0.9::double precision, 30::integer, 'x'::text) are read
+// the same way where the result is the same: to float8 or numeric from a
+// number, to an integer type from an integer, to text from a string.
+// Anything else goes to Postgres.
 func literal(n *pg.Node, kind livetables.Kind) (bound, bool) {
+	cast := ""
+	if tc := n.GetTypeCast(); tc != nil {
+		name, ok := qualifiedName(tc.TypeName.Names)
+		if !ok || len(tc.TypeName.ArrayBounds) > 0 || len(tc.TypeName.Typmods) > 0 {
+			return bound{}, false
+		}
+		cast, n = name, tc.Arg
+	}
 	c := n.GetAConst()
 	if c == nil {
 		return bound{}, false
 	}
+	number := func(r *big.Rat) (bound, bool) {
+		switch cast {
+		case "", "numeric", "float8":
+		case "int2", "int4", "int8":
+			if !r.IsInt() {
+				return bound{}, false
+			}
+		default:
+			return bound{}, false
+		}
+		// A float8 column compares in float8 whatever the number's type;
+		// an integer column compares in float8 only with a float8.
+		if kind == livetables.Float || cast == "float8" {
+			f, _ := r.Float64()
+			return floatBound(f), true
+		}
+		return bound{num: r}, true
+	}
 	switch {
 	case c.Isnull:
 		return bound{null: true}, true
-	case c.GetSval() != nil && kind == livetables.Text:
+	case c.GetSval() != nil && kind == livetables.Text && (cast == "" || cast == "text" || cast == "varchar"):
 		s := c.GetSval().Sval
 		return bound{str: &s}, true
 	case c.GetIval() != nil && kind != livetables.Text:
-		return bound{num: new(big.Rat).SetInt64(int64(c.GetIval().Ival))}, true
+		return number(new(big.Rat).SetInt64(int64(c.GetIval().Ival)))
 	case c.GetFval() != nil && kind != livetables.Text:
 		r, ok := new(big.Rat).SetString(c.GetFval().Fval)
 		if !ok {
 			return bound{}, false
 		}
-		if kind == livetables.Float {
-			f, _ := r.Float64()
-			return floatBound(f), true
-		}
-		return bound{num: r}, true
+		return number(r)
 	}
 	return bound{}, false
 }
