@@ -3,8 +3,8 @@ package sqlwire
 import (
 	"context"
 	"errors"
-	"math/big"
 	"github.com/sidetrend/sidetrend/sqlwire/livetables"
+	"math/big"
 	"strconv"
 	"strings"
 	"testing"
