@@ -161,21 +161,6 @@ func knownSettings() string {
 	return strings.Join(names, ", ")
 }
 
-// location is the session's TimeZone.
-func (s *settings) location() *time.Location {
-	loc, err := loadZone(s.get("timezone"))
-	if err != nil {
-		return time.UTC
-	}
-	return loc
-}
-
-// floatDigits is extra_float_digits.
-func (s *settings) floatDigits() int {
-	n, _ := strconv.Atoi(s.get("extra_float_digits"))
-	return n
-}
-
 // statementTimeout is statement_timeout, 0 for none.
 func (s *settings) statementTimeout() time.Duration {
 	d, _ := parseDuration(s.get("statement_timeout"))
