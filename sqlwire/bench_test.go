@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"context"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"testing"
 	"time"
 
@@ -98,4 +99,82 @@ func BenchmarkFit(b *testing.B) {
 			}
 		})
 	}
+}
+
+// fdwCursor is the statement postgres_fdw sends for a typical forecast
+// query with a what-if lambda.
+const fdwCursor = `DECLARE c1 CURSOR FOR
+SELECT tracker, series_key, lambda, horizon, forecast, lower95, upper95 FROM sidetrend_live.forecast WHERE ((tracker = 'bakery_sales'::text)) AND ((horizon <= 30)) AND ((lambda = ANY ('{0.8,0.9}'::double precision[]))) ORDER BY horizon ASC NULLS LAST LIMIT 10::bigint`
+
+// BenchmarkParse is Postgres' grammar (WebAssembly) and the whitelist on
+// the statement above, and the same text from the parse cache; deparse
+// writes the tree back as the evaluation query (once per statement and
+// number of parameters: evalSQL keeps it).
+func BenchmarkParse(b *testing.B) {
+	warmGrammar()
+	b.Run("parse", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := parseUncached(fdwCursor); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+	b.Run("cached", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := parseStatement(fdwCursor); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+	st, _ := parseStatement(fdwCursor)
+	q := statementQuery(st)
+	b.Run("deparse", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := deparse(q, 0); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+}
+
+// BenchmarkRoundTrip is what Postgres' evaluation adds to a statement:
+// the bounds query when a constant is not a plain literal (here the
+// array), and the evaluation of the query over the computed rows, each one
+// round trip to the test server (3 series x 2 lambdas x 30 horizons computed).
+func BenchmarkRoundTrip(b *testing.B) {
+	ctx := context.Background()
+	warmGrammar()
+	st, _ := parseStatement(fdwCursor)
+	q := statementQuery(st)
+	ev := &evaluator{pool: evalPool(b)}
+	set := newSettings("bench")
+	lim := Limits{}.withDefaults()
+	src := newMemSource(b, scenarioSeries())
+	b.Run("bounds", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := newPushdown(q, nil, &lim).domains(ctx, ev, set); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+	doms, err := newPushdown(q, nil, &lim).domains(ctx, ev, set)
+	if err != nil {
+		b.Fatal(err)
+	}
+	rs, err := livetables.Forecast.Scan(ctx, src, doms[q.rels[0]], q.rels[0].used, nil)
+	if err != nil || rs.N == 0 {
+		b.Fatalf("%v rows, %v", rs.N, err)
+	}
+	b.Run("evaluate", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			if _, err := ev.run(ctx, q, nil, []*livetables.Rows{rs}, set, newBudget(&lim)); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
 }

@@ -3,6 +3,7 @@ package sqlwire
 import (
 	"errors"
 	"fmt"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 )
 
 // SQLSTATE codes the endpoint sends (Postgres' errcodes.txt).
@@ -11,16 +12,7 @@ const (
 	codeFeatureNotSupported = "0A000" // feature_not_supported
 	codeReadOnly            = "25006" // read_only_sql_transaction
 	codeUndefinedTable      = "42P01" // undefined_table
-	codeUndefinedColumn     = "42703" // undefined_column
-	codeUndefinedFunction   = "42883" // undefined_function
 	codeUndefinedObject     = "42704" // undefined_object (unknown parameter)
-	codeDatatypeMismatch    = "42804" // datatype_mismatch
-	codeCannotCoerce        = "42846" // cannot_coerce
-	codeGrouping            = "42803" // grouping_error
-	codeInvalidText         = "22P02" // invalid_text_representation
-	codeInvalidDatetime     = "22007" // invalid_datetime_format
-	codeOutOfRange          = "22003" // numeric_value_out_of_range
-	codeDivisionByZero      = "22012" // division_by_zero
 	codeInvalidParameter    = "22023" // invalid_parameter_value
 	codeProtocolViolation   = "08P01" // protocol_violation
 	codeInvalidPassword     = "28P01" // invalid_password
@@ -34,7 +26,6 @@ const (
 	codeActiveTx            = "25001" // active_sql_transaction
 	codeInvalidCursor       = "34000" // invalid_cursor_name
 	codeDuplicateCursor     = "42P03" // duplicate_cursor
-	codeCursorState         = "24000" // invalid_cursor_state
 	codeObjectState         = "55000" // object_not_in_prerequisite_state
 	codeUnknownStatement    = "26000" // invalid_sql_statement_name
 	codeDuplicateStatement  = "42P05" // duplicate_prepared_statement
@@ -70,21 +61,9 @@ func (e *sqlError) withHint(format string, args ...any) *sqlError {
 	return e
 }
 
-func (e *sqlError) withDetail(format string, args ...any) *sqlError {
-	e.Detail = fmt.Sprintf(format, args...)
-	return e
-}
-
 func fatalf(code, format string, args ...any) *sqlError {
 	e := errorf(code, format, args...)
 	e.Severity = "FATAL"
-	return e
-}
-
-// syntaxErrorAt is a 42601 error at byte offset pos of the statement.
-func syntaxErrorAt(pos int, format string, args ...any) *sqlError {
-	e := errorf(codeSyntax, format, args...)
-	e.Position = pos + 1
 	return e
 }
 
@@ -100,6 +79,10 @@ func asSQLError(err error) *sqlError {
 	var se *sqlError
 	if errors.As(err, &se) {
 		return se
+	}
+	var te *livetables.Error
+	if errors.As(err, &te) {
+		return &sqlError{Code: te.Code, Severity: "ERROR", Message: te.Message, Hint: te.Hint}
 	}
 	return errorf(codeInternal, "%v", err)
 }

@@ -2,18 +2,14 @@ package sqlwire
 
 import (
 	"context"
+	"github.com/sidetrend/sidetrend/sqlwire/livetables"
 	"sort"
 	"strconv"
 	"strings"
 
 	"github.com/jackc/pgx/v5/pgproto3"
+	"github.com/jackc/pgx/v5/pgtype"
 )
-
-// oidType maps the parameter type OIDs a Parse may declare.
-var oidType = map[uint32]typ{
-	0: tUnknown, 705: tUnknown, 25: tText, 1043: tText, 1042: tText, 19: tText, 16: tBool, 21: tInt2,
-	23: tInt4, 20: tInt8, 700: tFloat4, 701: tFloat8, 1700: tNumeric, 1184: tTimestamptz, 1082: tDate,
-}
 
 // simpleQuery runs a simple-protocol Query: each statement in turn until
 // one fails, then ReadyForQuery.
@@ -124,64 +120,26 @@ func (sess *session) complete(tag string) error {
 	return nil
 }
 
-func (sess *session) rowDescription(names []string, types []typ) {
-	fields := make([]pgproto3.FieldDescription, len(names))
-	for i := range names {
-		t := types[i]
-		fields[i] = pgproto3.FieldDescription{Name: []byte(names[i]), DataTypeOID: typeOID[t],
-			DataTypeSize: typeLen[t], TypeModifier: -1}
+// textFields describes text columns, for SHOW.
+func textFields(names ...string) []pgproto3.FieldDescription {
+	out := make([]pgproto3.FieldDescription, len(names))
+	for i, n := range names {
+		out[i] = pgproto3.FieldDescription{Name: []byte(n), DataTypeOID: pgtype.TextOID, DataTypeSize: -1, TypeModifier: -1}
 	}
-	sess.be.Send(&pgproto3.RowDescription{Fields: fields})
+	return out
 }
 
-func planTypes(p *plan) []typ {
-	ts := make([]typ, len(p.targets))
-	for i, t := range p.targets {
-		ts[i] = resultType(t)
-	}
-	return ts
-}
-
-// sendRow sends one DataRow in text format.
-func (sess *session) sendRow(row []value) {
-	digits := sess.set.floatDigits()
-	buf := sess.textBuf[:0]
-	ends := make([]int, len(row))
-	for i, v := range row {
-		if !v.null {
-			buf = appendText(buf, v, digits)
-		}
-		ends[i] = len(buf)
-	}
-	sess.textBuf = buf
-	vals := sess.rowBuf[:0]
-	start := 0
-	for i, v := range row {
-		if v.null {
-			vals = append(vals, nil)
-		} else {
-			vals = append(vals, buf[start:ends[i]:ends[i]])
-		}
-		start = ends[i]
-	}
-	sess.rowBuf = vals
-	sess.be.Send(&pgproto3.DataRow{Values: vals})
-}
-
-// sendRows sends up to limit rows (0: all) from it and reports how many
-// and whether it ended.
-func (sess *session) sendRows(ctx context.Context, it rowIter, limit int64, send bool) (n int64, done bool, err error) {
+// sendRows sends up to limit rows (0: all) of res from *pos on and
+// reports how many and whether the result ended.
+func (sess *session) sendRows(res *result, pos *int, limit int64, send bool) (n int64, done bool, err error) {
 	for limit <= 0 || n < limit {
-		row, err := it.next(ctx)
-		if err != nil {
-			return n, false, err
-		}
-		if row == nil {
+		if *pos >= len(res.rows) {
 			return n, true, nil
 		}
 		if send {
-			sess.sendRow(row)
+			sess.be.Send(&pgproto3.DataRow{Values: res.rows[*pos]})
 		}
+		*pos++
 		n++
 		if send && n%flushEvery == 0 {
 			if err := sess.be.Flush(); err != nil {
@@ -189,50 +147,75 @@ func (sess *session) sendRows(ctx context.Context, it rowIter, limit int64, send
 			}
 		}
 	}
-	return n, false, nil
+	return n, *pos >= len(res.rows), nil
+}
+
+// query computes what q needs and has Postgres evaluate it.
+func (sess *session) query(ctx context.Context, q *selectStmt, params []paramVal) (*result, error) {
+	lim := &sess.srv.cfg.Limits
+	b := newBudget(lim)
+	doms, err := newPushdown(q, params, lim).domains(ctx, sess.srv.ev, sess.set)
+	if err != nil {
+		return nil, canceledOr(ctx, err)
+	}
+	rows := make([]*livetables.Rows, len(q.rels))
+	for i, r := range q.rels {
+		if rows[i], err = r.table.Scan(ctx, sess.srv.src, doms[r], r.used, b); err != nil {
+			return nil, canceledOr(ctx, err)
+		}
+	}
+	res, err := sess.srv.ev.run(ctx, q, params, rows, sess.set, b)
+	if err != nil {
+		return nil, canceledOr(ctx, err)
+	}
+	return res, nil
 }
 
 func (sess *session) runSelect(st *selectStmt, params []paramVal, p *portal, maxRows uint32) error {
-	ctx, end := sess.beginStatement()
-	defer end()
 	if p == nil {
-		pl, err := buildPlan(st, params, sess.set.location(), &sess.srv.cfg.Limits)
+		ctx, end := sess.beginStatement()
+		defer end()
+		res, err := sess.query(ctx, st, params)
 		if err != nil {
 			return err
 		}
-		it, err := pl.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
+		sess.be.Send(&pgproto3.RowDescription{Fields: res.fields})
+		pos := 0
+		n, _, err := sess.sendRows(res, &pos, 0, true)
 		if err != nil {
-			return canceledOr(ctx, err)
-		}
-		sess.rowDescription(pl.names, planTypes(pl))
-		n, _, err := sess.sendRows(ctx, it, 0, true)
-		if err != nil {
-			return canceledOr(ctx, err)
+			return err
 		}
 		return sess.complete("SELECT " + strconv.FormatInt(n, 10))
 	}
-	if p.done {
-		return sess.complete("SELECT 0")
+	if err := sess.portalResult(p); err != nil {
+		return err
 	}
-	if p.it == nil {
-		it, err := p.plan.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
-		if err != nil {
-			return canceledOr(ctx, err)
-		}
-		p.it = it
-	}
-	n, done, err := sess.sendRows(ctx, p.it, int64(maxRows), true)
+	n, done, err := sess.sendRows(p.res, &p.pos, int64(maxRows), true)
 	if err != nil {
-		p.done = true
-		return canceledOr(ctx, err)
+		return err
 	}
 	p.sent += n
 	if !done {
 		sess.be.Send(&pgproto3.PortalSuspended{})
 		return nil
 	}
-	p.done = true
-	return sess.complete("SELECT " + strconv.FormatInt(n, 10))
+	return sess.complete("SELECT " + strconv.FormatInt(p.sent, 10))
+}
+
+// portalResult runs a SELECT portal's query once, at its first Describe
+// or Execute.
+func (sess *session) portalResult(p *portal) error {
+	if p.res != nil {
+		return nil
+	}
+	ctx, end := sess.beginStatement()
+	defer end()
+	res, err := sess.query(ctx, p.prep.st.(*selectStmt), p.params)
+	if err != nil {
+		return err
+	}
+	p.res = res
+	return nil
 }
 
 // canceledOr turns the error of a statement whose context ended into the
@@ -255,18 +238,14 @@ func (sess *session) declare(st *declareStmt, params []paramVal) error {
 	if _, ok := sess.cursors[st.name]; ok {
 		return errorf(codeDuplicateCursor, "cursor %q already exists", st.name)
 	}
-	pl, err := buildPlan(st.query, params, sess.set.location(), &sess.srv.cfg.Limits)
+	ctx, end := sess.beginStatement()
+	defer end()
+	res, err := sess.query(ctx, st.query, params)
 	if err != nil {
 		return err
 	}
-	ctx, end := sess.beginStatement()
-	defer end()
-	it, err := pl.open(ctx, sess.srv.src, newBudget(&sess.srv.cfg.Limits))
-	if err != nil {
-		return canceledOr(ctx, err)
-	}
 	sess.cursorSeq++
-	sess.cursors[st.name] = &cursor{name: st.name, plan: pl, it: it, seq: sess.cursorSeq}
+	sess.cursors[st.name] = &cursor{name: st.name, res: res, seq: sess.cursorSeq}
 	return sess.complete("DECLARE CURSOR")
 }
 
@@ -275,28 +254,20 @@ func (sess *session) fetch(st *fetchStmt, describe bool) error {
 	if !ok {
 		return errorf(codeInvalidCursor, "cursor %q does not exist", st.name)
 	}
-	if c.failed {
-		return errorf(codeObjectState, "cursor %q failed earlier in this transaction", st.name).
-			withHint("close it and declare it again")
-	}
 	if describe && !st.move {
-		sess.rowDescription(c.plan.names, planTypes(c.plan))
+		sess.be.Send(&pgproto3.RowDescription{Fields: c.res.fields})
 	}
 	verb := "FETCH "
 	if st.move {
 		verb = "MOVE "
 	}
-	if c.done || st.count == 0 {
+	if st.count == 0 {
 		return sess.complete(verb + "0")
 	}
-	ctx, end := sess.beginStatement()
-	defer end()
-	n, done, err := sess.sendRows(ctx, c.it, st.count, !st.move)
+	n, _, err := sess.sendRows(c.res, &c.pos, st.count, !st.move)
 	if err != nil {
-		c.failed = true
-		return canceledOr(ctx, err)
+		return err
 	}
-	c.done = done
 	return sess.complete(verb + strconv.FormatInt(n, 10))
 }
 
@@ -416,10 +387,10 @@ func (sess *session) show(st *showStmt, describe bool) error {
 		}
 		sort.Slice(names, func(i, j int) bool { return strings.ToLower(names[i]) < strings.ToLower(names[j]) })
 		if describe {
-			sess.rowDescription([]string{"name", "setting", "description"}, []typ{tText, tText, tText})
+			sess.be.Send(&pgproto3.RowDescription{Fields: textFields("name", "setting", "description")})
 		}
 		for _, n := range names {
-			sess.sendRow([]value{textVal(n), textVal(sess.set.get(strings.ToLower(n))), textVal("")})
+			sess.be.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(n), []byte(sess.set.get(strings.ToLower(n))), {}}})
 		}
 		return sess.complete("SHOW")
 	}
@@ -437,13 +408,24 @@ func (sess *session) show(st *showStmt, describe bool) error {
 		v = sess.set.get(strings.ToLower(s.name))
 	}
 	if describe {
-		sess.rowDescription([]string{name}, []typ{tText})
+		sess.be.Send(&pgproto3.RowDescription{Fields: textFields(name)})
 	}
-	sess.sendRow([]value{textVal(v)})
+	sess.be.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(v)}})
 	return sess.complete("SHOW")
 }
 
 // Extended protocol.
+
+// statementQuery is the SELECT a statement runs, if any.
+func statementQuery(st stmt) *selectStmt {
+	switch st := st.(type) {
+	case *selectStmt:
+		return st
+	case *declareStmt:
+		return st.query
+	}
+	return nil
+}
 
 func (sess *session) parse(m *pgproto3.Parse) error {
 	if m.Name != "" {
@@ -459,116 +441,20 @@ func (sess *session) parse(m *pgproto3.Parse) error {
 	if err := sess.checkFailed(st); err != nil {
 		return err
 	}
-	types := make([]typ, len(m.ParameterOIDs))
 	for i, oid := range m.ParameterOIDs {
-		t, ok := oidType[oid]
-		if !ok {
-			return notSupported("parameter $%d has type OID %d, which the endpoint does not know: declare it as text (25) or leave it 0", i+1, oid)
+		if _, ok := typeMap.TypeForOID(oid); !ok && oid != 0 {
+			return notSupported("parameter $%d has type OID %d, which is not a built-in type: declare it as text (25) or leave it 0", i+1, oid)
 		}
-		types[i] = t
 	}
-	for n := maxParam(st); len(types) < n; {
-		types = append(types, tUnknown)
+	oids := append([]uint32(nil), m.ParameterOIDs...)
+	if q := statementQuery(st); q != nil {
+		for len(oids) < q.maxParam {
+			oids = append(oids, 0)
+		}
 	}
-	inferParamTypes(st, types)
-	sess.prepared[m.Name] = &prepared{sql: m.Query, st: st, paramTypes: types}
+	sess.prepared[m.Name] = &prepared{sql: m.Query, st: st, paramOIDs: oids}
 	sess.be.Send(&pgproto3.ParseComplete{})
 	return nil
-}
-
-// maxParam is the highest $n a statement uses.
-func maxParam(st stmt) int {
-	var q *selectStmt
-	switch st := st.(type) {
-	case *selectStmt:
-		q = st
-	case *declareStmt:
-		q = st.query
-	default:
-		return 0
-	}
-	n := 0
-	visit := func(e expr) {
-		walkExpr(e, func(x expr) {
-			if p, ok := x.(*paramExpr); ok && p.n > n {
-				n = p.n
-			}
-		})
-	}
-	for _, t := range q.targets {
-		visit(t.x)
-	}
-	visit(q.where)
-	if q.join != nil {
-		visit(q.join.on)
-	}
-	for _, g := range q.groupBy {
-		visit(g)
-	}
-	visit(q.having)
-	for _, o := range q.orderBy {
-		visit(o.x)
-	}
-	visit(q.limit)
-	visit(q.offset)
-	return n
-}
-
-// inferParamTypes gives undeclared parameters the type they are cast to
-// ($1::integer) or the type of the column they are compared with
-// (horizon <= $1), as Postgres' parse analysis would report them.
-func inferParamTypes(st stmt, types []typ) {
-	var q *selectStmt
-	switch st := st.(type) {
-	case *selectStmt:
-		q = st
-	case *declareStmt:
-		q = st.query
-	default:
-		return
-	}
-	columnType := func(e expr) typ {
-		r, ok := e.(*colRef)
-		if !ok {
-			return tUnknown
-		}
-		for _, tr := range q.from {
-			if t := tables[tr.name]; t != nil && (r.rel == "" || r.rel == tr.alias || r.rel == tr.name) {
-				if i := t.column(r.name); i >= 0 {
-					return t.cols[i].t
-				}
-			}
-		}
-		return tUnknown
-	}
-	set := func(x expr, t typ) {
-		if p, ok := x.(*paramExpr); ok && p.n <= len(types) && types[p.n-1] == tUnknown && t != tUnknown {
-			types[p.n-1] = t
-		}
-	}
-	visit := func(e expr) {
-		walkExpr(e, func(x expr) {
-			switch x := x.(type) {
-			case *castExpr:
-				if !x.array {
-					set(x.x, x.t)
-				}
-			case *opExpr:
-				if x.l != nil {
-					set(x.l, columnType(x.r))
-					set(x.r, columnType(x.l))
-				}
-			}
-		})
-	}
-	visit(q.where)
-	if q.join != nil {
-		visit(q.join.on)
-	}
-	for _, t := range q.targets {
-		visit(t.x)
-	}
-	visit(q.having)
 }
 
 func (sess *session) bind(m *pgproto3.Bind) error {
@@ -582,9 +468,9 @@ func (sess *session) bind(m *pgproto3.Bind) error {
 	if err := sess.checkFailed(prep.st); err != nil {
 		return err
 	}
-	if len(m.Parameters) != len(prep.paramTypes) {
+	if len(m.Parameters) != len(prep.paramOIDs) {
 		return errorf(codeProtocolViolation, "bind message supplies %d parameters, but prepared statement %q requires %d",
-			len(m.Parameters), m.PreparedStatement, len(prep.paramTypes))
+			len(m.Parameters), m.PreparedStatement, len(prep.paramOIDs))
 	}
 	for _, f := range m.ParameterFormatCodes {
 		if f != 0 {
@@ -603,17 +489,9 @@ func (sess *session) bind(m *pgproto3.Bind) error {
 	}
 	params := make([]paramVal, len(m.Parameters))
 	for i, raw := range m.Parameters {
-		params[i] = paramVal{t: prep.paramTypes[i], known: true, null: raw == nil, text: string(raw)}
+		params[i] = paramVal{oid: prep.paramOIDs[i], null: raw == nil, text: string(raw)}
 	}
-	p := &portal{prep: prep, params: params}
-	if q, ok := prep.st.(*selectStmt); ok {
-		pl, err := buildPlan(q, params, sess.set.location(), &sess.srv.cfg.Limits)
-		if err != nil {
-			return err
-		}
-		p.plan = pl
-	}
-	sess.portals[m.DestinationPortal] = p
+	sess.portals[m.DestinationPortal] = &portal{prep: prep, params: params}
 	sess.be.Send(&pgproto3.BindComplete{})
 	return nil
 }
@@ -625,49 +503,52 @@ func (sess *session) describe(m *pgproto3.Describe) error {
 		if !ok {
 			return errorf(codeUnknownStatement, "prepared statement %q does not exist", m.Name)
 		}
-		oids := make([]uint32, len(prep.paramTypes))
-		for i, t := range prep.paramTypes {
-			if t == tUnknown {
-				t = tText
-			}
-			oids[i] = typeOID[t]
+		q := statementQuery(prep.st)
+		if q == nil {
+			sess.be.Send(&pgproto3.ParameterDescription{ParameterOIDs: prep.paramOIDs})
+			return sess.describeResult(prep.st, nil)
+		}
+		ctx, end := sess.beginStatement()
+		defer end()
+		oids, fields, err := sess.srv.ev.describe(ctx, q, prep.paramOIDs)
+		if err != nil {
+			return err
 		}
 		sess.be.Send(&pgproto3.ParameterDescription{ParameterOIDs: oids})
-		params := make([]paramVal, len(prep.paramTypes))
-		for i, t := range prep.paramTypes {
-			params[i] = paramVal{t: t}
+		if _, ok := prep.st.(*selectStmt); ok {
+			sess.be.Send(&pgproto3.RowDescription{Fields: fields})
+			return nil
 		}
-		return sess.describeResult(prep.st, params, nil)
+		sess.be.Send(&pgproto3.NoData{})
+		return nil
 	case 'P':
 		p, ok := sess.portals[m.Name]
 		if !ok {
 			return errorf(codeInvalidCursor, "portal %q does not exist", m.Name)
 		}
-		return sess.describeResult(p.prep.st, p.params, p.plan)
+		if _, ok := p.prep.st.(*selectStmt); ok {
+			if err := sess.portalResult(p); err != nil {
+				return err
+			}
+			sess.be.Send(&pgproto3.RowDescription{Fields: p.res.fields})
+			return nil
+		}
+		return sess.describeResult(p.prep.st, p)
 	}
 	return errorf(codeProtocolViolation, "invalid DESCRIBE message subtype %d", m.ObjectType)
 }
 
 // describeResult sends RowDescription for statements that return rows and
 // NoData for the others (DECLARE among them, as postgres_fdw expects).
-func (sess *session) describeResult(st stmt, params []paramVal, pl *plan) error {
+func (sess *session) describeResult(st stmt, p *portal) error {
 	switch st := st.(type) {
-	case *selectStmt:
-		if pl == nil {
-			var err error
-			if pl, err = buildPlan(st, params, sess.set.location(), &sess.srv.cfg.Limits); err != nil {
-				return err
-			}
-		}
-		sess.rowDescription(pl.names, planTypes(pl))
-		return nil
 	case *fetchStmt:
 		if c, ok := sess.cursors[st.name]; ok && !st.move {
-			sess.rowDescription(c.plan.names, planTypes(c.plan))
+			sess.be.Send(&pgproto3.RowDescription{Fields: c.res.fields})
 			return nil
 		}
 	case *showStmt:
-		sess.rowDescription([]string{st.name}, []typ{tText})
+		sess.be.Send(&pgproto3.RowDescription{Fields: textFields(st.name)})
 		return nil
 	}
 	sess.be.Send(&pgproto3.NoData{})
@@ -679,11 +560,12 @@ func (sess *session) execute(m *pgproto3.Execute) error {
 	if !ok {
 		return errorf(codeInvalidCursor, "portal %q does not exist", m.Portal)
 	}
-	if _, isSelect := p.prep.st.(*selectStmt); !isSelect && p.done {
+	_, isSelect := p.prep.st.(*selectStmt)
+	if !isSelect && p.done {
 		return sess.complete("")
 	}
 	err := sess.run(p.prep.st, p.params, p, m.MaxRows)
-	if _, isSelect := p.prep.st.(*selectStmt); !isSelect {
+	if !isSelect {
 		p.done = true
 	}
 	return err

@@ -14,6 +14,7 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgxpool"
 	"github.com/sidetrend/sidetrend/internal/pgtest"
 )
 
@@ -38,6 +39,23 @@ type fixture struct {
 }
 
 var rolesOnce sync.Once
+
+var (
+	poolOnce sync.Once
+	pool     *pgxpool.Pool
+)
+
+// evalPool is the pool of the test server's database that endpoints
+// evaluate queries in: one per test binary.
+func evalPool(t testing.TB) *pgxpool.Pool {
+	poolOnce.Do(func() {
+		var err error
+		if pool, err = pgxpool.New(context.Background(), pgtest.AdminURL()); err != nil {
+			t.Fatalf("connect the evaluation pool: %v", err)
+		}
+	})
+	return pool
+}
 
 // ensureRoles creates the cluster-wide roles once per test binary:
 // sidetrend_reader (which foreign.sql grants to) and a login role in it.
@@ -66,7 +84,7 @@ func startEndpoint(t testing.TB, src Source, cfg Config) *Server {
 	if cfg.Credentials == nil {
 		cfg.Credentials = map[string]string{testUser: testPassword}
 	}
-	srv := New(cfg, src, testLogger(t))
+	srv := New(cfg, src, evalPool(t), testLogger(t))
 	if err := srv.Start(context.Background()); err != nil {
 		t.Fatalf("start endpoint: %v", err)
 	}
@@ -96,7 +114,11 @@ func newFixtureConfig(t testing.TB, src *memSource, cfg Config) *fixture {
 	srv := startEndpoint(t, src, cfg)
 	f := &fixture{srv: srv, src: src, port: srv.Addr().(*net.TCPAddr).Port, adminURL: pgtest.NewDatabase(t)}
 	ensureRoles(t, ctx, f.adminURL)
-	f.attach(t, testPassword)
+	password := testPassword
+	if pw, ok := cfg.Credentials[testUser]; ok {
+		password = pw
+	}
+	f.attach(t, password)
 
 	u, err := url.Parse(f.adminURL)
 	if err != nil {

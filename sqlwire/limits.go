@@ -9,15 +9,14 @@ import (
 	"strconv"
 	"sync"
 	"time"
-	"unsafe"
 )
 
 // This file holds what bounds the cost one statement or one client may
 // put on the endpoint: the settings, their defaults, the per-statement
 // budget of rows and memory, and the errors that say which setting to
-// change. The parser and evaluator call in at a few places (compile of an
-// IN list, the table scans, the rows a sort or join holds); everything
-// else lives here so that it carries over to another evaluator.
+// change. The query handling calls in at a few places (the IN lists and
+// arrays that narrow a parameter column, the table scans, the result it
+// holds); everything else lives here.
 
 // Limits bound the work of one statement and the clients of the endpoint.
 // A zero field takes the default named in its comment.
@@ -29,12 +28,12 @@ type Limits struct {
 	// 1,000.
 	MaxInList int
 	// MaxRows bounds the rows one statement (or one cursor's query)
-	// computes: the rows the tables produce and the rows a join forms;
-	// 1,000,000.
+	// computes: the rows the tables produce before Postgres evaluates the
+	// query over them; 1,000,000.
 	MaxRows int64
 	// MaxStatementMemory bounds, in bytes, what one statement holds at
-	// once: the rows of a sort, the groups of GROUP BY, the inner side of a
-	// join; 256 MiB.
+	// once: the computed rows on their way to Postgres and the result on
+	// its way to the client; 256 MiB.
 	MaxStatementMemory int64
 	// MaxMessageSize bounds one frontend message, so the text of a query
 	// and its parameters, in bytes; 1 MiB. Longer ones are refused before
@@ -174,25 +173,21 @@ func plural(n int, word string) string {
 	return strconv.Itoa(n) + " " + word + "s"
 }
 
-// valueBytes is what one held value costs, besides the bytes of its text.
-const valueBytes = int64(unsafe.Sizeof(value{}))
-
 // budget is what one statement (or one cursor's query) may still compute
 // and hold. It is used by one goroutine.
 type budget struct {
 	lim  *Limits
 	rows int64 // rows computed so far
 	held int64 // bytes held so far
-	// heldPerRow is what each row of the scan being opened will hold,
-	// for the estimate before it computes (0: its rows are not held).
-	heldPerRow int64
 }
 
 func newBudget(lim *Limits) *budget { return &budget{lim: lim} }
 
-// expect checks, before a scan computes anything, that its rows (an upper
-// bound, described by what) fit the row and memory limits.
-func (b *budget) expect(rows int64, what string) error {
+// Expect checks, before a scan computes anything, that its rows (an upper
+// bound, described by what), each holding about rowBytes until Postgres
+// has them, fit the row and memory limits, and counts them
+// (livetables.Budget).
+func (b *budget) Expect(rows, rowBytes int64, what string) error {
 	if b == nil {
 		return nil
 	}
@@ -201,36 +196,12 @@ func (b *budget) expect(rows int64, what string) error {
 			formatCount(rows), what, formatCount(b.lim.MaxRows)).
 			withHint("narrow it with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxRows)
 	}
-	if b.heldPerRow > 0 && rows > (b.lim.MaxStatementMemory-b.held)/b.heldPerRow {
-		return b.memoryError(rows*b.heldPerRow, what)
+	if rows > (b.lim.MaxStatementMemory-b.held)/rowBytes {
+		return b.memoryError(rows*rowBytes, "the computed rows ("+what+")")
 	}
+	b.rows += rows
+	b.held += rows * rowBytes
 	return nil
-}
-
-// computed counts n computed rows.
-func (b *budget) computed(n int64) error {
-	if b == nil {
-		return nil
-	}
-	b.rows += n
-	if b.rows > b.lim.MaxRows {
-		return errorf(codeProgramLimit, "this query computes more than %s rows; the sidetrend endpoint computes at most %s rows per statement",
-			formatCount(b.lim.MaxRows), formatCount(b.lim.MaxRows)).
-			withHint("narrow it with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxRows)
-	}
-	return nil
-}
-
-// hold counts the memory of one held row (what: "ORDER BY", "the join").
-func (b *budget) hold(row []value, what string) error {
-	if b == nil {
-		return nil
-	}
-	n := int64(len(row)) * valueBytes
-	for i := range row {
-		n += int64(len(row[i].s)) + int64(len(row[i].arr))*valueBytes
-	}
-	return b.holdBytes(n, what)
 }
 
 // holdBytes counts n held bytes.
@@ -248,24 +219,7 @@ func (b *budget) holdBytes(n int64, what string) error {
 func (b *budget) memoryError(bytes int64, what string) *sqlError {
 	return errorf(codeOutOfMemory, "%s would hold about %d MiB; the sidetrend endpoint holds at most %d MiB per statement",
 		what, (bytes+(1<<20)-1)>>20, b.lim.MaxStatementMemory>>20).
-		withHint("narrow the query with conditions on tracker, series_key, lambda or horizon, sort or group locally, or raise %s", flagMaxMemory)
-}
-
-// countIter counts the rows of a scan against the budget.
-type countIter struct {
-	it rowIter
-	b  *budget
-}
-
-func (c *countIter) next(ctx context.Context) ([]value, error) {
-	r, err := c.it.next(ctx)
-	if err != nil || r == nil {
-		return r, err
-	}
-	if err := c.b.computed(1); err != nil {
-		return nil, err
-	}
-	return r, nil
+		withHint("narrow the query with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxMemory)
 }
 
 // checkInList refuses an array of more values than MaxInList.

@@ -159,15 +159,16 @@ func TestRowLimit(t *testing.T) {
 	if n := values.Load(); n != 0 {
 		t.Errorf("the refused query read the values of %d series, want none", n)
 	}
-	// A join forms more rows than its scans: 50 + 50 scanned and 1,275
-	// pairs (horizon a <= horizon b) counted as they are formed.
+	// The scans of a join count together: 600 + 600 rows are more than
+	// 1,000, refused before the second scan computes. The pairs the join
+	// forms are Postgres' to form, bounded by the statement timeout.
 	_, err = execAll(ctx, c, `SELECT count(*) FROM sidetrend_live.forecast a INNER JOIN sidetrend_live.forecast b
-		ON (a.horizon <= b.horizon) WHERE a.series_key = 'market' AND b.series_key = 'market' AND a.horizon <= 50 AND b.horizon <= 50`)
-	pe = pgErr(t, err, codeProgramLimit, "join of 1,275 pairs")
-	if !strings.Contains(pe.Message, "more than 1,000 rows") {
+		ON (a.horizon <= b.horizon) WHERE a.series_key = 'market' AND b.series_key = 'market' AND a.horizon <= 600 AND b.horizon <= 600`)
+	pe = pgErr(t, err, codeProgramLimit, "join of 600 + 600 rows")
+	if !strings.Contains(pe.Message, "600 rows (1 series x 1 lambda x 600 horizons)") {
 		t.Errorf("join: %q", pe.Message)
 	}
-	// The same join with 40 horizons forms 820 pairs: 900 rows in all.
+	// The same join with 40 horizons forms 820 pairs from 80 rows.
 	res, err = execAll(ctx, c, `SELECT count(*) FROM sidetrend_live.forecast a INNER JOIN sidetrend_live.forecast b
 		ON (a.horizon <= b.horizon) WHERE a.series_key = 'market' AND b.series_key = 'market' AND a.horizon <= 40 AND b.horizon <= 40`)
 	if err != nil || string(res[0].Rows[0][0]) != "820" {
@@ -184,23 +185,24 @@ func TestStatementMemoryLimit(t *testing.T) {
 	srv := startEndpoint(t, src, Config{Limits: Limits{MaxStatementMemory: 1 << 20}})
 	c := mustDirect(t, ctx, srv)
 
-	// A sort of 10,000 rows of 13 columns and a key needs 10,000 x 14
-	// values: more than 1 MiB. Refused before the refit.
+	// 10,000 computed rows of 13 columns (about 208 bytes each until
+	// Postgres has them) are more than 1 MiB. Refused before the refit.
 	_, err := execAll(ctx, c, `SELECT * FROM sidetrend_live.forecast
 		WHERE series_key = 'market' AND lambda = 0.9 AND horizon <= 10000 ORDER BY forecast`)
-	pe := pgErr(t, err, codeOutOfMemory, "sort of 10,000 rows")
+	pe := pgErr(t, err, codeOutOfMemory, "10,000 rows")
 	if !strings.Contains(pe.Message, "at most 1 MiB") || !strings.Contains(pe.Hint, "--sql-max-statement-memory-mb") {
 		t.Errorf("sort: %q hint %q", pe.Message, pe.Hint)
 	}
 	if n := values.Load(); n != 0 {
 		t.Errorf("the refused sort read the values of %d series, want none", n)
 	}
-	// GROUP BY holds each group; 10,000 of them are counted as they come.
-	_, err = execAll(ctx, c, `SELECT horizon, count(*) FROM sidetrend_live.forecast
-		WHERE series_key = 'market' AND horizon <= 10000 GROUP BY horizon`)
-	pe = pgErr(t, err, codeOutOfMemory, "10,000 groups")
-	if !strings.Contains(pe.Message, "GROUP BY") {
-		t.Errorf("groups: %q", pe.Message)
+	// The result is held too: 4,000 computed rows fit, 4,000 rows of
+	// every column four times over do not.
+	_, err = execAll(ctx, c, `SELECT *, *, *, * FROM sidetrend_live.forecast
+		WHERE series_key = 'market' AND horizon <= 4000`)
+	pe = pgErr(t, err, codeOutOfMemory, "result of 4,000 wide rows")
+	if !strings.Contains(pe.Message, "the result (over ") {
+		t.Errorf("result: %q", pe.Message)
 	}
 	// Small sorts and groups run.
 	res, err := execAll(ctx, c, `SELECT horizon, count(*) FROM sidetrend_live.forecast
@@ -494,7 +496,7 @@ func TestRequireTLS(t *testing.T) {
 		t.Fatalf("cancelled statement: %v", err)
 	}
 
-	err = New(Config{Listen: "127.0.0.1:0", Credentials: map[string]string{"a": "b"}, RequireTLS: true}, src, nil).Start(ctx)
+	err = New(Config{Listen: "127.0.0.1:0", Credentials: map[string]string{"a": "b"}, RequireTLS: true}, src, nil, nil).Start(ctx)
 	if err == nil || !strings.Contains(err.Error(), "TLS is required but no certificate") {
 		t.Fatalf("RequireTLS without a certificate: %v", err)
 	}

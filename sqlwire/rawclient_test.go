@@ -1,6 +1,7 @@
 package sqlwire
 
 import (
+	"crypto/hmac"
 	"crypto/pbkdf2"
 	"crypto/sha256"
 	"encoding/base64"
@@ -28,6 +29,12 @@ func scramClientProof(password string, salt []byte, iters int, authMessage strin
 		proof[i] = clientKey[i] ^ sig[i]
 	}
 	return proof, hmacSHA256(hmacSHA256(salted, []byte("Server Key")), []byte(authMessage))
+}
+
+func hmacSHA256(key, msg []byte) []byte {
+	m := hmac.New(sha256.New, key)
+	m.Write(msg)
+	return m.Sum(nil)
 }
 
 var (

@@ -1,50 +1,68 @@
 package sqlwire
 
 import (
+	"context"
 	"encoding/base64"
 	"testing"
+	"time"
+
+	"github.com/xdg-go/scram"
 )
 
+// scramServerWithNonce is the server side with a fixed server nonce.
+func scramServerWithNonce(sec scram.StoredCredentials, nonce string) (*scram.ServerConversation, error) {
+	srv, err := scram.SHA256.NewServer(func(string) (scram.StoredCredentials, error) { return sec, nil })
+	if err != nil {
+		return nil, err
+	}
+	return srv.WithNonceGenerator(func() string { return nonce }).NewConversation(), nil
+}
+
 // TestSCRAMVector runs the server side on the SCRAM-SHA-256 example of
-// RFC 7677 section 3 (user "user", password "pencil").
+// RFC 7677 section 3 (user "user", password "pencil"), with the RFC's
+// server nonce.
 func TestSCRAMVector(t *testing.T) {
 	salt, _ := base64.StdEncoding.DecodeString("W22ZaJ0SNY7soEsUEjb6gQ==")
 	sec, err := newScramSecret("pencil", salt, 4096)
 	if err != nil {
 		t.Fatal(err)
 	}
-	x := &scramExchange{secret: sec}
-	if err := x.clientFirst("n,,n=user,r=rOprNGfwEbeRWgbNEkqO", "%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0"); err != nil {
+	srv, err := scramServerWithNonce(sec, "%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0")
+	if err != nil {
 		t.Fatal(err)
 	}
-	if want := "r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,s=W22ZaJ0SNY7soEsUEjb6gQ==,i=4096"; x.serverFirst != want {
-		t.Fatalf("server-first %q, want %q", x.serverFirst, want)
+	first, err := srv.Step("n,,n=user,r=rOprNGfwEbeRWgbNEkqO")
+	if want := "r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,s=W22ZaJ0SNY7soEsUEjb6gQ==,i=4096"; err != nil || first != want {
+		t.Fatalf("server-first %q (%v), want %q", first, err, want)
 	}
-	final, ok, err := x.clientFinal("c=biws,r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,p=dHzbZapWIk4jUhN+Ute9ytag9zjfMHgsqmmiz7AndVQ=")
-	if err != nil || !ok {
-		t.Fatalf("proof refused: %v", err)
+	final, err := srv.Step("c=biws,r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,p=dHzbZapWIk4jUhN+Ute9ytag9zjfMHgsqmmiz7AndVQ=")
+	if want := "v=6rriTRBi23WpRR/wtup+mMhUZUn/dB5nLTJRsjl95G4="; err != nil || final != want || !srv.Valid() {
+		t.Fatalf("server-final %q (%v, valid %v), want %q", final, err, srv.Valid(), want)
 	}
-	if want := "v=6rriTRBi23WpRR/wtup+mMhUZUn/dB5nLTJRsjl95G4="; final != want {
-		t.Fatalf("server-final %q, want %q", final, want)
-	}
-
 	// One flipped bit in the proof is a wrong password.
-	x = &scramExchange{secret: sec}
-	x.clientFirst("n,,n=user,r=rOprNGfwEbeRWgbNEkqO", "%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0")
-	if _, ok, err := x.clientFinal("c=biws,r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,p=eHzbZapWIk4jUhN+Ute9ytag9zjfMHgsqmmiz7AndVQ="); ok || err != nil {
-		t.Fatalf("altered proof: ok %v err %v", ok, err)
+	srv, _ = scramServerWithNonce(sec, "%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0")
+	srv.Step("n,,n=user,r=rOprNGfwEbeRWgbNEkqO")
+	if srv.Step("c=biws,r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,p=eHzbZapWIk4jUhN+Ute9ytag9zjfMHgsqmmiz7AndVQ="); srv.Valid() {
+		t.Fatal("altered proof accepted")
 	}
-	// Malformed or mismatched messages are errors, not wrong passwords.
-	for _, first := range []string{"", "p=tls-server-end-point,,n=,r=x", "n,a=admin,n=,r=x", "n,,r=x", "n,,n=,r="} {
-		if err := (&scramExchange{secret: sec}).clientFirst(first, "s"); err == nil {
-			t.Errorf("client-first %q accepted", first)
-		}
+}
+
+// TestNonASCIIPassword logs postgres_fdw (libpq, which prepares the
+// password with SASLprep) in with a password outside ASCII whose SASLprep
+// form differs from its bytes: "ﬁ" (U+FB01) maps to "fi" under NFKC and the
+// no-break space U+00A0 to a space (RFC 4013, sections 2.1 and 2.2).
+func TestNonASCIIPassword(t *testing.T) {
+	t.Parallel()
+	ctx := testCtx(t, time.Minute)
+	const password = "crème\u00a0brûlée-\ufb01ve" // made up for the test
+	f := newFixtureConfig(t, newMemSource(t, scenarioSeries()), Config{Credentials: map[string]string{testUser: password}})
+	var n int64
+	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
+		t.Fatalf("series through a non-ASCII password: %d, %v", n, err)
 	}
-	x = &scramExchange{secret: sec}
-	x.clientFirst("n,,n=,r=abc", "def")
-	for _, final := range []string{"c=biws,r=abcdef", "c=eSws,r=abcdef,p=AAAA", "c=biws,r=abc,p=AAAA", "c=biws,r=abcdef,p=!!"} {
-		if _, ok, err := x.clientFinal(final); err == nil || ok {
-			t.Errorf("client-final %q: ok %v err %v", final, ok, err)
-		}
+	// The same password in another normal form is the same password.
+	f.attach(t, "crème brûlée-five")
+	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
+		t.Fatalf("series through the SASLprep form of the password: %d, %v", n, err)
 	}
 }

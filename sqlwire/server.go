@@ -13,9 +13,7 @@ package sqlwire
 
 import (
 	"context"
-	"crypto/hmac"
 	"crypto/rand"
-	"crypto/sha256"
 	"crypto/subtle"
 	"crypto/tls"
 	"encoding/binary"
@@ -26,6 +24,9 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/xdg-go/scram"
 )
 
 // Config configures the endpoint.
@@ -60,12 +61,13 @@ const DefaultDatabase = "sidetrend"
 type Server struct {
 	cfg Config
 	src Source
+	ev  *evaluator
 	log *slog.Logger
 
 	mu       sync.Mutex
 	ln       net.Listener
 	tls      *tls.Config
-	secrets  map[string]*scramSecret
+	secrets  map[string]scram.StoredCredentials
 	fakeKey  []byte // keys fake SCRAM salts for unknown users
 	sessions map[uint32]*session
 	conns    map[net.Conn]struct{}
@@ -85,9 +87,10 @@ type Server struct {
 	authFailures   *authThrottle
 }
 
-// New returns a server for cfg that computes its tables from src. Start
-// listens.
-func New(cfg Config, src Source, log *slog.Logger) *Server {
+// New returns a server for cfg that computes its tables from src and has
+// db, the sidecar's own database, evaluate the queries over them (any role
+// that can connect will do: the queries read no table). Start listens.
+func New(cfg Config, src Source, db *pgxpool.Pool, log *slog.Logger) *Server {
 	if log == nil {
 		log = slog.New(slog.DiscardHandler)
 	}
@@ -101,7 +104,7 @@ func New(cfg Config, src Source, log *slog.Logger) *Server {
 		cfg.StartupTimeout = 10 * time.Second
 	}
 	cfg.Limits = cfg.Limits.withDefaults()
-	return &Server{cfg: cfg, src: src, log: log,
+	return &Server{cfg: cfg, src: src, ev: &evaluator{pool: db}, log: log,
 		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{},
 		authFailures: newAuthThrottle(cfg.Limits.AuthFailureDelay, cfg.Limits.AuthFailureMaxDelay, maxAuthAddresses)}
 }
@@ -137,21 +140,22 @@ func (s *Server) Start(ctx context.Context) error {
 	if s.cfg.RequireTLS && (s.cfg.TLSCertFile == "" || s.cfg.TLSKeyFile == "") {
 		return errors.New("sqlwire: TLS is required but no certificate is configured: give a certificate and key (--tls-cert, --tls-key) or turn off --sql-require-tls")
 	}
+	if s.ev.pool == nil {
+		return errors.New("sqlwire: no database: the endpoint evaluates queries in the sidecar's Postgres")
+	}
+	// The parser's WebAssembly module compiles once per process (seconds
+	// on two cores): here rather than in the first client's statement.
+	warmGrammar()
 	if len(s.cfg.Credentials) == 0 {
 		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
 	}
-	secrets := map[string]*scramSecret{}
+	secrets := map[string]scram.StoredCredentials{}
 	for user, pw := range s.cfg.Credentials {
 		if user == "" {
 			return errors.New("sqlwire: a credential has an empty user name: write user:password")
 		}
 		if pw == "" {
 			return fmt.Errorf("sqlwire: user %q has an empty password: postgres_fdw requires a password for non-superusers", user)
-		}
-		for i := 0; i < len(pw); i++ {
-			if pw[i] >= 0x80 {
-				return fmt.Errorf("sqlwire: the password of user %q has non-ASCII characters: use ASCII, which SCRAM clients send unchanged", user)
-			}
 		}
 		salt := make([]byte, scramSaltLen)
 		if _, err := rand.Read(salt); err != nil {
@@ -377,18 +381,4 @@ func (s *Server) cancelRequest(pid uint32, secret []byte) {
 		s.cancels.Add(1)
 		s.log.Info("sql endpoint statement cancelled by request", "pid", pid, "user", sess.user)
 	}
-}
-
-// secretFor returns the SCRAM secret of user, or a fake one (stable per
-// user name, never matching) so that unknown users go through the same
-// exchange and fail at the same step as a wrong password.
-func (s *Server) secretFor(user string) (*scramSecret, bool) {
-	if sec, ok := s.secrets[user]; ok {
-		return sec, true
-	}
-	m := hmac.New(sha256.New, s.fakeKey)
-	m.Write([]byte(user))
-	sum := m.Sum(nil)
-	return &scramSecret{salt: sum[:scramSaltLen], iters: scramIterations,
-		storedKey: make([]byte, sha256.Size), serverKey: make([]byte, sha256.Size)}, false
 }

@@ -56,9 +56,6 @@ type session struct {
 	// The running statement's cancel function, for CancelRequest.
 	mu         sync.Mutex
 	cancelStmt context.CancelCauseFunc
-
-	rowBuf  [][]byte
-	textBuf []byte
 }
 
 type savepoint struct {
@@ -67,29 +64,28 @@ type savepoint struct {
 	cursorSeq int
 }
 
-// cursor is a DECLAREd cursor: its plan and the open row iterator.
+// cursor is a DECLAREd cursor: its query's result, evaluated at DECLARE,
+// and how far FETCH has read it.
 type cursor struct {
-	name   string
-	plan   *plan
-	it     rowIter
-	seq    int
-	done   bool
-	failed bool
+	name string
+	res  *result
+	pos  int
+	seq  int
 }
 
 // prepared is a parsed statement of the extended protocol.
 type prepared struct {
-	sql        string
-	st         stmt
-	paramTypes []typ // declared by Parse (tUnknown where 0), extended to the highest $n used
+	sql       string
+	st        stmt
+	paramOIDs []uint32 // declared by Parse (0: inferred by Postgres), extended to the highest $n used
 }
 
 // portal is a bound statement.
 type portal struct {
 	prep   *prepared
 	params []paramVal
-	plan   *plan   // SELECT: compiled at Bind
-	it     rowIter // SELECT: open after the first Execute
+	res    *result // SELECT: evaluated at the first Describe or Execute
+	pos    int
 	sent   int64
 	done   bool
 }
@@ -330,15 +326,15 @@ func (sess *session) authenticate() error {
 	if init.AuthMechanism != scramMechanism {
 		return fatalf(codeProtocolViolation, "client selected an invalid SASL authentication mechanism %q: use %s", init.AuthMechanism, scramMechanism)
 	}
-	x := &scramExchange{secret: sec}
-	nonce, err := newServerNonce()
+	conv, err := scramServer(sec)
 	if err != nil {
-		return fatalf(codeInternal, "%v", err)
+		return fatalf(codeInternal, "SCRAM: %v", err)
 	}
-	if err := x.clientFirst(string(init.Data), nonce); err != nil {
-		return fatalf(codeProtocolViolation, "%v", err)
+	serverFirst, err := conv.Step(string(init.Data))
+	if err != nil {
+		return fatalf(codeProtocolViolation, "malformed SCRAM message: %v", err)
 	}
-	sess.be.Send(&pgproto3.AuthenticationSASLContinue{Data: []byte(x.serverFirst)})
+	sess.be.Send(&pgproto3.AuthenticationSASLContinue{Data: []byte(serverFirst)})
 	if err := sess.be.Flush(); err != nil {
 		return err
 	}
@@ -353,10 +349,8 @@ func (sess *session) authenticate() error {
 	if !ok {
 		return fatalf(codeProtocolViolation, "expected SASL response, got %T", msg)
 	}
-	final, good, err := x.clientFinal(string(resp.Data))
-	if err != nil {
-		return fatalf(codeProtocolViolation, "%v", err)
-	}
+	final, _ := conv.Step(string(resp.Data))
+	good := conv.Valid()
 	if !good || !known {
 		delay := s.authFailures.failed(hostOf(sess.conn.RemoteAddr()))
 		sess.log.Info("sql endpoint authentication failed", "known_user", known, "delay", delay)

@@ -161,21 +161,6 @@ func knownSettings() string {
 	return strings.Join(names, ", ")
 }
 
-// location is the session's TimeZone.
-func (s *settings) location() *time.Location {
-	loc, err := loadZone(s.get("timezone"))
-	if err != nil {
-		return time.UTC
-	}
-	return loc
-}
-
-// floatDigits is extra_float_digits.
-func (s *settings) floatDigits() int {
-	n, _ := strconv.Atoi(s.get("extra_float_digits"))
-	return n
-}
-
 // statementTimeout is statement_timeout, 0 for none.
 func (s *settings) statementTimeout() time.Duration {
 	d, _ := parseDuration(s.get("statement_timeout"))
@@ -195,14 +180,13 @@ func checkOneOf(allowed ...string) func(string) (string, error) {
 }
 
 func checkBool(v string) (string, error) {
-	b, err := inputValue(v, tBool, time.UTC)
-	if err != nil {
-		return "", errorf(codeInvalidParameter, "parameter requires a Boolean value, not %q", v)
-	}
-	if b.i != 0 {
+	switch strings.ToLower(strings.TrimSpace(v)) {
+	case "on", "true", "yes", "1", "t", "y":
 		return "on", nil
+	case "off", "false", "no", "0", "f", "n":
+		return "off", nil
 	}
-	return "off", nil
+	return "", errorf(codeInvalidParameter, "parameter requires a Boolean value, not %q", v)
 }
 
 func checkIntRange(lo, hi int) func(string) (string, error) {

@@ -48,7 +48,7 @@ func TestBadInputCatalogue(t *testing.T) {
 	}
 	const password = "lantern-and-kite" // made up for the test
 	srv := sqlwire.New(sqlwire.Config{Listen: "127.0.0.1:0", Credentials: map[string]string{"sidetrend": password}},
-		liveSource{pool: pool}, nil)
+		liveSource{pool: pool}, pool, nil)
 	if err := srv.Start(ctx); err != nil {
 		t.Fatal(err)
 	}

@@ -28,7 +28,7 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 	ctx := context.Background()
 	const password = "tea-and-gears" // made up for the test
 	srv := sqlwire.New(sqlwire.Config{Listen: "127.0.0.1:0", Credentials: map[string]string{"sidetrend": password}},
-		liveSource{pool: pool}, nil)
+		liveSource{pool: pool}, pool, nil)
 	if err := srv.Start(ctx); err != nil {
 		t.Fatal(err)
 	}
@@ -159,7 +159,7 @@ func TestLiveLimitFlags(t *testing.T) {
 		t.Errorf("set: %+v, want %+v and RequireTLS", cfg, want)
 	}
 	cfg.Listen, cfg.Credentials = "127.0.0.1:0", map[string]string{"sidetrend": "x"}
-	err = sqlwire.New(cfg, liveSource{}, nil).Start(context.Background())
+	err = sqlwire.New(cfg, liveSource{}, nil, nil).Start(context.Background())
 	if err == nil || !strings.Contains(err.Error(), "TLS is required but no certificate") {
 		t.Errorf("--sql-require-tls without --tls-cert: %v", err)
 	}

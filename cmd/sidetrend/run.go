@@ -138,7 +138,7 @@ func startLive(c *cli.Context, addr, db string, log *slog.Logger) (func(), error
 		return nil, err
 	}
 	cfg.Listen, cfg.Credentials = addr, creds
-	srv := sqlwire.New(cfg, liveSource{pool: pool}, log)
+	srv := sqlwire.New(cfg, liveSource{pool: pool}, pool, log)
 	if err := srv.Start(c.Context); err != nil {
 		pool.Close()
 		return nil, fmt.Errorf("live endpoint: %w", err)

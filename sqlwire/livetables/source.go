@@ -1,4 +1,4 @@
-package sqlwire
+package livetables
 
 import (
 	"context"
