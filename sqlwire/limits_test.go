@@ -303,6 +303,9 @@ func TestUnauthenticatedLimit(t *testing.T) {
 	for range 5 {
 		mustDirect(t, ctx, srv)
 	}
+	// The server counts a session as logged in a moment after the client
+	// is: wait for that, or a late one takes a place below.
+	waitFor(t, ctx, "the logins counted", func() bool { return srv.Unauthenticated() == 0 })
 	// Four connections that say nothing fill it.
 	var idle []net.Conn
 	for range 4 {
