@@ -251,7 +251,7 @@ DECLARE
     v_hi     text;
     v_lo_in  text;
     v_hi_in  text;
-    v_klen   text;
+    v_extra   text;
     v_valid  text;
     v_valid_in text;
     v_reason text;
@@ -322,7 +322,7 @@ BEGIN
     -- 2700 bytes; a longer key stopped the whole log before).
     SELECT string_agg(format('coalesce(octet_length(r.%I), 0)', a.attname), ' + ')
            || format(' + %s', greatest(cardinality(t.key_cols) - 1, 0))
-    INTO v_klen
+    INTO v_extra
     FROM unnest(t.key_cols) AS k(c)
     JOIN pg_attribute a ON a.attrelid = t.source AND a.attname = k.c AND NOT a.attisdropped
     WHERE a.atttypid IN ('text'::regtype, 'character varying'::regtype, 'character'::regtype);
@@ -333,17 +333,23 @@ BEGIN
     -- fail.
     -- The same condition twice: with the span's bounds as variables and
     -- inline (one format each, so no name is read as a format string).
-    v_klen := CASE WHEN v_klen IS NULL THEN '' ELSE format(' AND %s <= 1000', v_klen) END;
+    v_extra := CASE WHEN v_extra IS NULL THEN '' ELSE format(' AND %s <= 1000', v_extra) END;
+    -- On the log scale (trackers.transform, migration 00012; read through
+    -- to_jsonb so that this function also runs before that column exists)
+    -- a value that is not positive has no logarithm: it is a reject.
+    IF (to_jsonb(t) ->> 'transform') = 'log' THEN
+        v_extra := v_extra || format(' AND %s > 0', v_v);
+    END IF;
     v_valid := format('%1$s IS NOT NULL AND %1$s >= %4$s AND %1$s <= %5$s AND %2$s IS NOT NULL AND %2$s %3$s%6$s',
         v_t, v_v,
         CASE WHEN v_vtype = 'numeric'::regtype THEN 'BETWEEN -1e150 AND 1e150'
              ELSE 'BETWEEN -1e150::float8 AND 1e150::float8' END,
-        'v_lo', 'v_hi', v_klen);
+        'v_lo', 'v_hi', v_extra);
     v_valid_in := format('%1$s IS NOT NULL AND %1$s >= %4$s AND %1$s <= %5$s AND %2$s IS NOT NULL AND %2$s %3$s%6$s',
         v_t, v_v,
         CASE WHEN v_vtype = 'numeric'::regtype THEN 'BETWEEN -1e150 AND 1e150'
              ELSE 'BETWEEN -1e150::float8 AND 1e150::float8' END,
-        v_lo_in, v_hi_in, v_klen);
+        v_lo_in, v_hi_in, v_extra);
     v_reason := format($r$CASE WHEN %1$s IS NULL THEN 'time is NULL'
         WHEN NOT isfinite(%1$s) THEN 'time is infinite'
         WHEN NOT (%1$s >= %4$s AND %1$s < %5$s) THEN 'time is outside the years 1 to 9999'
@@ -352,12 +358,14 @@ BEGIN
         WHEN %2$s::text = 'NaN' THEN 'value is NaN'
         WHEN %2$s::text IN ('Infinity', '-Infinity') THEN 'value is infinite'
         WHEN NOT (%2$s BETWEEN -1e150 AND 1e150) THEN 'value is beyond +-1e150 (too large to fold in without overflow)'
+        WHEN NOT (%2$s > 0) AND %6$L THEN 'value is not positive (the tracker fits logarithms)'
         ELSE 'series key is longer than 1000 bytes' END$r$, v_t, v_v,
         format('time is more than %s from now (the tracker''s span)', t.span),
         CASE t.time_type WHEN 'timestamptz' THEN '''0001-01-01 00:00:00+00''::timestamptz'
              WHEN 'timestamp' THEN '''0001-01-01''::timestamp' ELSE '''0001-01-01''::date' END,
         CASE t.time_type WHEN 'timestamptz' THEN '''10000-01-01 00:00:00+00''::timestamptz'
-             WHEN 'timestamp' THEN '''10000-01-01''::timestamp' ELSE '''10000-01-01''::date' END);
+             WHEN 'timestamp' THEN '''10000-01-01''::timestamp' ELSE '''10000-01-01''::date' END,
+        coalesce((to_jsonb(t) ->> 'transform') = 'log', false));
     v_key := sidetrend.series_key_expr(t.key_cols, 'r');
     -- Rejects keep the tracked columns only, as text, the key cut at 200
     -- characters.

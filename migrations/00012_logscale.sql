@@ -288,7 +288,10 @@ BEGIN
         RETURN format('tracker "%s" unchanged: every setting given is already in use', t.name);
     END IF;
 
-    v_reread := n.bucket IS DISTINCT FROM t.bucket OR n.tz IS DISTINCT FROM t.tz;
+    -- A new transform changes what capture takes in (on the log scale a
+    -- row whose value is not positive is a reject), so it rereads the
+    -- source as a new bucket width does.
+    v_reread := n.bucket IS DISTINCT FROM t.bucket OR n.tz IS DISTINCT FROM t.tz OR n.transform IS DISTINCT FROM t.transform;
     v_capture := v_reread OR n.span IS DISTINCT FROM t.span;
     v_replay := v_reread OR (n.horizon, n.degree, n.period, n.harmonics, n.lambda, n.burn_in, n.transform)
                 IS DISTINCT FROM (t.horizon, t.degree, t.period, t.harmonics, t.lambda, t.burn_in, t.transform);

@@ -46,8 +46,8 @@ var logSpec = estimator.Spec{Degree: 1, Period: 12, Harmonics: 3, Lambda: 0.95}
 // natural logs of the same 144 values gives, transformed back: forecast
 // exp(log forecast), bounds exp(log forecast -+ t se), cumulative forecast
 // the sum of those, cumulative bounds NULL. One month's value is set to 0:
-// the sidecar skips it like a gap (NaN in the offline fit) and says so in
-// the series' last_error. forecast_history and accuracy_by_horizon form the
+// capture rejects that row, and its month is a gap (NaN in the offline
+// fit). forecast_history and accuracy_by_horizon form the
 // same bounds.
 func TestLogScaleForecasts(t *testing.T) {
 	t.Parallel()
@@ -79,13 +79,15 @@ func TestLogScaleForecasts(t *testing.T) {
 		t.Fatal(err)
 	}
 
-	var lastErr, empty string
-	if err := pool.QueryRow(ctx, `SELECT coalesce(s.last_error, ''), t.empty FROM sidetrend.series s
-		JOIN sidetrend.trackers t ON t.id = s.tracker_id WHERE t.name = 'air'`).Scan(&lastErr, &empty); err != nil {
+	// The zero row is a reject at capture (0 has no logarithm), so its
+	// month holds no rows: a gap.
+	var reason, empty string
+	if err := pool.QueryRow(ctx, `SELECT r.reason, t.empty FROM sidetrend.rejects r
+		JOIN sidetrend.trackers t ON t.id = r.tracker_id WHERE t.name = 'air'`).Scan(&reason, &empty); err != nil {
 		t.Fatal(err)
 	}
-	if !strings.Contains(lastErr, "not positive (log scale)") || empty != "gap" {
-		t.Errorf("last_error %q, empty %q; want the zero month named and empty buckets as gaps", lastErr, empty)
+	if reason != "value is not positive (the tracker fits logarithms)" || empty != "gap" {
+		t.Errorf("reject %q, empty %q; want the zero row rejected and empty buckets as gaps", reason, empty)
 	}
 
 	rows, err := pool.Query(ctx, `SELECT horizon, forecast, lower80, upper80, lower95, upper95, cum_forecast,
@@ -188,7 +190,7 @@ func TestLogScaleSettings(t *testing.T) {
 	if err := pool.QueryRow(ctx, `SELECT sidetrend.alter_tracker('obs', transform => 'log')`).Scan(&msg); err != nil {
 		t.Fatal(err)
 	}
-	if !strings.Contains(msg, "transform none -> log") || !strings.Contains(msg, "of the old scale were deleted") {
+	if !strings.Contains(msg, "transform none -> log") || !strings.Contains(msg, "the source was read again") || !strings.Contains(msg, "were deleted") {
 		t.Errorf("alter says %q", msg)
 	}
 	if err := s.CatchUp(ctx); err != nil {
