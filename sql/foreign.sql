@@ -89,7 +89,9 @@ CREATE FOREIGN TABLE sidetrend_live.forecast (
     upper95         double precision,
     cum_forecast     double precision,
     cum_lower95     double precision,
-    cum_upper95     double precision
+    cum_upper95     double precision,
+    data_buckets    bigint,
+    reach           double precision
 ) SERVER sidetrend_live
   OPTIONS (schema_name 'sidetrend_live', table_name 'forecast', updatable 'false', truncatable 'false');
 

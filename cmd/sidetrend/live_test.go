@@ -98,6 +98,23 @@ func TestLiveEndpointOnStoredState(t *testing.T) {
 			}
 		}
 	}
+	// How far a horizon reaches: the same data_buckets and reach as the
+	// sidetrend.forecasts view, whose rows stop at the tracker's horizon.
+	var span int64
+	var viewReach, liveReach float64
+	if err := pool.QueryRow(ctx, `SELECT v.data_buckets, v.reach, l.reach FROM sidetrend.forecasts v
+		JOIN sidetrend_live.forecast l ON l.tracker = v.tracker AND l.series_key = v.series_key AND l.horizon = v.horizon
+		WHERE v.tracker = 'sales' AND v.series_key = 'north' AND v.horizon = 3 AND l.data_buckets = v.data_buckets`).
+		Scan(&span, &viewReach, &liveReach); err != nil {
+		t.Fatalf("data_buckets and reach of the live forecast against the view: %v", err)
+	}
+	if span < 1 || liveReach != viewReach {
+		t.Errorf("live reach %v, view reach %v over %d buckets", liveReach, viewReach, span)
+	}
+	if err := pool.QueryRow(ctx, `SELECT reach FROM sidetrend_live.forecast
+		WHERE tracker = 'sales' AND series_key = 'north' AND horizon = $1`, 2*span).Scan(&liveReach); err != nil || liveReach != 2 {
+		t.Errorf("reach at twice the history: %v (err %v), want 2", liveReach, err)
+	}
 	var n int64
 	if err := pool.QueryRow(ctx, `SELECT n_errors FROM sidetrend_live.backtest
 		WHERE tracker = 'sales' AND series_key = 'north' AND lambda = 0.9`).Scan(&n); err != nil {

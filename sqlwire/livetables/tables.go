@@ -277,8 +277,13 @@ var Forecast = &Table{
 		{"forecast", "float8", 0, false}, {"lower80", "float8", 0, false}, {"upper80", "float8", 0, false},
 		{"lower95", "float8", 0, false}, {"upper95", "float8", 0, false},
 		{"cum_forecast", "float8", 0, false}, {"cum_lower95", "float8", 0, false}, {"cum_upper95", "float8", 0, false},
+		// How far a horizon reaches beyond the series' own history (as in
+		// sidetrend.forecasts): buckets from the first to the newest, and
+		// horizon / data_buckets; above 1 the forecast extrapolates past
+		// the span of the data.
+		{"data_buckets", "int8", 0, false}, {"reach", "float8", 0, false},
 	},
-	RowBytes: 13 * 16,
+	RowBytes: 15 * 16,
 	scan:     scanForecast,
 }
 
@@ -508,6 +513,9 @@ const (
 	fcHorizon
 	fcPeriodStart
 	fcForecast
+	// fcDataBuckets and fcReach follow the eight forecast and bound columns.
+	fcDataBuckets = fcForecast + 8
+	fcReach       = fcForecast + 9
 )
 
 // scanForecast computes the forecasts the domains allow, one (series,
@@ -599,6 +607,20 @@ func scanForecast(ctx context.Context, req *scanRequest) (*Rows, error) {
 				for j, v := range values {
 					if want[fcForecast+j] {
 						rs.f8[1+j] = append(rs.f8[1+j], f8(v[k]))
+					}
+				}
+				if want[fcDataBuckets] || want[fcReach] {
+					var n int64
+					var reach pgtype.Float8
+					if hasCal && !info.FirstBucket.IsZero() {
+						n = info.LastIndex - info.Calendar.Index(info.FirstBucket) + 1
+						reach = pgtype.Float8{Float64: float64(h) / float64(n), Valid: n > 0}
+					}
+					if want[fcDataBuckets] {
+						rs.i8[0] = append(rs.i8[0], n)
+					}
+					if want[fcReach] {
+						rs.f8[9] = append(rs.f8[9], reach)
 					}
 				}
 				rs.N++
