@@ -298,7 +298,12 @@ BEGIN
 
     -- Lock the series rows in key order first, as a drain batch does, and
     -- then the tracker row (which a batch holds FOR SHARE after its series):
-    -- the same order, so the two never wait on each other in a cycle.
+    -- the same order, so the two never wait on each other in a cycle. A
+    -- reread takes the tracker's backfill lock before both, as a batch
+    -- takes it (shared) before its series.
+    IF v_reread THEN
+        PERFORM pg_advisory_xact_lock(21332, t.id);
+    END IF;
     PERFORM 1 FROM sidetrend.series s WHERE s.tracker_id = t.id ORDER BY s.series_key FOR UPDATE;
     UPDATE sidetrend.trackers tr SET horizon = n.horizon, degree = n.degree, period = n.period, harmonics = n.harmonics,
         lambda = n.lambda, burn_in = n.burn_in, history_buckets = n.history_buckets, span = n.span, tz = n.tz,

@@ -530,6 +530,12 @@ func (s *Syncer) backfillOne(ctx context.Context, id int) (bool, error) {
 	if _, err := tx.Exec(ctx, `SELECT set_config('lock_timeout', $1, true)`, s.lockTimeout()); err != nil {
 		return false, err
 	}
+	// The tracker's backfill lock (see claimSQL) before its row: a drain
+	// that holds the lock shared locks the row FOR SHARE (checkSettings),
+	// and taking them the other way round deadlocked with it.
+	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock(21332, $1)`, int32(id)); err != nil {
+		return false, err
+	}
 	// Re-check under the lock: another sidecar may have done it.
 	var done, active, stale bool
 	if err := tx.QueryRow(ctx, backfillSignatureSQL, id).Scan(&done, &active, &stale); err != nil {
