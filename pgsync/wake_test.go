@@ -132,3 +132,14 @@ func TestWakeWithoutNotify(t *testing.T) {
 		t.Errorf("%d notifications after the lease ran out, want at least 1", n)
 	}
 }
+
+// TestSpread: the background tuning's sample keeps the order and spreads
+// over the whole list.
+func TestSpread(t *testing.T) {
+	if got := spread([]int{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}, 3); len(got) != 3 || got[0] != 0 || got[1] != 3 || got[2] != 6 {
+		t.Errorf("spread of 10 into 3: %v, want [0 3 6]", got)
+	}
+	if got := spread([]int{1, 2}, 3); len(got) != 2 {
+		t.Errorf("spread of 2 into 3: %v, want both", got)
+	}
+}
