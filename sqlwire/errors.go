@@ -2,8 +2,8 @@ package sqlwire
 
 import (
 	"errors"
-	"fmt"
 	"github.com/sidetrend/sidetrend/sqlwire/livetables"
+	"github.com/sidetrend/sidetrend/sqlwire/wire"
 )
 
 // SQLSTATE codes the endpoint sends (Postgres' errcodes.txt).
@@ -34,38 +34,12 @@ const (
 )
 
 // sqlError is an error that goes to the client as an ErrorResponse with
-// its SQLSTATE. Message says what went wrong, Hint what to change.
-type sqlError struct {
-	Code     string
-	Severity string // ERROR unless FATAL
-	Message  string
-	Detail   string
-	Hint     string
-	Position int // 1-based character position in the statement, 0 if none
-}
+// its SQLSTATE (wire.Error).
+type sqlError = wire.Error
 
-func (e *sqlError) Error() string {
-	s := e.Message
-	if e.Hint != "" {
-		s += " (" + e.Hint + ")"
-	}
-	return s
-}
+func errorf(code, format string, args ...any) *sqlError { return wire.Errorf(code, format, args...) }
 
-func errorf(code, format string, args ...any) *sqlError {
-	return &sqlError{Code: code, Severity: "ERROR", Message: fmt.Sprintf(format, args...)}
-}
-
-func (e *sqlError) withHint(format string, args ...any) *sqlError {
-	e.Hint = fmt.Sprintf(format, args...)
-	return e
-}
-
-func fatalf(code, format string, args ...any) *sqlError {
-	e := errorf(code, format, args...)
-	e.Severity = "FATAL"
-	return e
-}
+func fatalf(code, format string, args ...any) *sqlError { return wire.Fatalf(code, format, args...) }
 
 // notSupported is the 0A000 refusal of something the endpoint understands
 // but will not run; what is named in the message.

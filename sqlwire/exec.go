@@ -11,30 +11,27 @@ import (
 	"github.com/jackc/pgx/v5/pgtype"
 )
 
-// simpleQuery runs a simple-protocol Query: each statement in turn until
-// one fails, then ReadyForQuery.
-func (sess *session) simpleQuery(sql string) {
-	sess.log.Debug("sql endpoint query", "sql", sql)
+// SimpleQuery runs a simple-protocol Query: each statement in turn until
+// one fails; the protocol side then sends ReadyForQuery.
+func (sess *session) SimpleQuery(sql string) error {
+	sess.w.Log().Debug("sql endpoint query", "sql", sql)
 	delete(sess.prepared, "")
 	delete(sess.portals, "")
 	stmts, err := parseStatements(sql)
 	if err != nil {
-		sess.sendError(err)
-		sess.readyForQuery()
-		return
+		return wireError(err)
 	}
+	defer sess.endImplicit()
 	for _, st := range stmts {
 		if _, ok := st.(*emptyStmt); ok {
-			sess.be.Send(&pgproto3.EmptyQueryResponse{})
+			sess.w.Send(&pgproto3.EmptyQueryResponse{})
 			continue
 		}
 		if err := sess.run(st, nil, nil, 0); err != nil {
-			sess.sendError(err)
-			break
+			return wireError(err)
 		}
 	}
-	sess.endImplicit()
-	sess.readyForQuery()
+	return nil
 }
 
 // allowedWhenFailed reports whether st may run in a failed transaction
@@ -47,7 +44,7 @@ func allowedWhenFailed(st stmt) bool {
 func (sess *session) checkFailed(st stmt) error {
 	if sess.tx == txFailed && !allowedWhenFailed(st) {
 		return errorf(codeInFailedTx, "current transaction is aborted, commands ignored until end of transaction block").
-			withHint("send ROLLBACK, or ROLLBACK TO SAVEPOINT")
+			WithHint("send ROLLBACK, or ROLLBACK TO SAVEPOINT")
 	}
 	return nil
 }
@@ -109,14 +106,14 @@ func (sess *session) run(st stmt, params []paramVal, p *portal, maxRows uint32) 
 		sess.set.resetAll()
 		return sess.complete("DISCARD ALL")
 	case *emptyStmt:
-		sess.be.Send(&pgproto3.EmptyQueryResponse{})
+		sess.w.Send(&pgproto3.EmptyQueryResponse{})
 		return nil
 	}
 	return errorf(codeInternal, "statement %T has no executor", st)
 }
 
 func (sess *session) complete(tag string) error {
-	sess.be.Send(&pgproto3.CommandComplete{CommandTag: []byte(tag)})
+	sess.w.Send(&pgproto3.CommandComplete{CommandTag: []byte(tag)})
 	return nil
 }
 
@@ -137,12 +134,12 @@ func (sess *session) sendRows(res *result, pos *int, limit int64, send bool) (n 
 			return n, true, nil
 		}
 		if send {
-			sess.be.Send(&pgproto3.DataRow{Values: res.rows[*pos]})
+			sess.w.Send(&pgproto3.DataRow{Values: res.rows[*pos]})
 		}
 		*pos++
 		n++
 		if send && n%flushEvery == 0 {
-			if err := sess.be.Flush(); err != nil {
+			if err := sess.w.Flush(); err != nil {
 				return n, false, err
 			}
 		}
@@ -179,7 +176,7 @@ func (sess *session) runSelect(st *selectStmt, params []paramVal, p *portal, max
 		if err != nil {
 			return err
 		}
-		sess.be.Send(&pgproto3.RowDescription{Fields: res.fields})
+		sess.w.Send(&pgproto3.RowDescription{Fields: res.fields})
 		pos := 0
 		n, _, err := sess.sendRows(res, &pos, 0, true)
 		if err != nil {
@@ -196,7 +193,7 @@ func (sess *session) runSelect(st *selectStmt, params []paramVal, p *portal, max
 	}
 	p.sent += n
 	if !done {
-		sess.be.Send(&pgproto3.PortalSuspended{})
+		sess.w.Send(&pgproto3.PortalSuspended{})
 		return nil
 	}
 	return sess.complete("SELECT " + strconv.FormatInt(p.sent, 10))
@@ -233,7 +230,7 @@ func canceledOr(ctx context.Context, err error) error {
 func (sess *session) declare(st *declareStmt, params []paramVal) error {
 	if sess.tx == txIdle {
 		return errorf(codeNoActiveTx, "DECLARE CURSOR can only be used in transaction blocks").
-			withHint("start a transaction with BEGIN first")
+			WithHint("start a transaction with BEGIN first")
 	}
 	if _, ok := sess.cursors[st.name]; ok {
 		return errorf(codeDuplicateCursor, "cursor %q already exists", st.name)
@@ -255,7 +252,7 @@ func (sess *session) fetch(st *fetchStmt, describe bool) error {
 		return errorf(codeInvalidCursor, "cursor %q does not exist", st.name)
 	}
 	if describe && !st.move {
-		sess.be.Send(&pgproto3.RowDescription{Fields: c.res.fields})
+		sess.w.Send(&pgproto3.RowDescription{Fields: c.res.fields})
 	}
 	verb := "FETCH "
 	if st.move {
@@ -387,10 +384,10 @@ func (sess *session) show(st *showStmt, describe bool) error {
 		}
 		sort.Slice(names, func(i, j int) bool { return strings.ToLower(names[i]) < strings.ToLower(names[j]) })
 		if describe {
-			sess.be.Send(&pgproto3.RowDescription{Fields: textFields("name", "setting", "description")})
+			sess.w.Send(&pgproto3.RowDescription{Fields: textFields("name", "setting", "description")})
 		}
 		for _, n := range names {
-			sess.be.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(n), []byte(sess.set.get(strings.ToLower(n))), {}}})
+			sess.w.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(n), []byte(sess.set.get(strings.ToLower(n))), {}}})
 		}
 		return sess.complete("SHOW")
 	}
@@ -408,9 +405,9 @@ func (sess *session) show(st *showStmt, describe bool) error {
 		v = sess.set.get(strings.ToLower(s.name))
 	}
 	if describe {
-		sess.be.Send(&pgproto3.RowDescription{Fields: textFields(name)})
+		sess.w.Send(&pgproto3.RowDescription{Fields: textFields(name)})
 	}
-	sess.be.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(v)}})
+	sess.w.Send(&pgproto3.DataRow{Values: [][]byte{[]byte(v)}})
 	return sess.complete("SHOW")
 }
 
@@ -433,7 +430,7 @@ func (sess *session) parse(m *pgproto3.Parse) error {
 			return errorf(codeDuplicateStatement, "prepared statement %q already exists", m.Name)
 		}
 	}
-	sess.log.Debug("sql endpoint parse", "name", m.Name, "sql", m.Query, "param_oids", m.ParameterOIDs)
+	sess.w.Log().Debug("sql endpoint parse", "name", m.Name, "sql", m.Query, "param_oids", m.ParameterOIDs)
 	st, err := parseStatement(m.Query)
 	if err != nil {
 		return err
@@ -453,7 +450,7 @@ func (sess *session) parse(m *pgproto3.Parse) error {
 		}
 	}
 	sess.prepared[m.Name] = &prepared{sql: m.Query, st: st, paramOIDs: oids}
-	sess.be.Send(&pgproto3.ParseComplete{})
+	sess.w.Send(&pgproto3.ParseComplete{})
 	return nil
 }
 
@@ -492,7 +489,7 @@ func (sess *session) bind(m *pgproto3.Bind) error {
 		params[i] = paramVal{oid: prep.paramOIDs[i], null: raw == nil, text: string(raw)}
 	}
 	sess.portals[m.DestinationPortal] = &portal{prep: prep, params: params}
-	sess.be.Send(&pgproto3.BindComplete{})
+	sess.w.Send(&pgproto3.BindComplete{})
 	return nil
 }
 
@@ -505,7 +502,7 @@ func (sess *session) describe(m *pgproto3.Describe) error {
 		}
 		q := statementQuery(prep.st)
 		if q == nil {
-			sess.be.Send(&pgproto3.ParameterDescription{ParameterOIDs: prep.paramOIDs})
+			sess.w.Send(&pgproto3.ParameterDescription{ParameterOIDs: prep.paramOIDs})
 			return sess.describeResult(prep.st, nil)
 		}
 		ctx, end := sess.beginStatement()
@@ -514,12 +511,12 @@ func (sess *session) describe(m *pgproto3.Describe) error {
 		if err != nil {
 			return err
 		}
-		sess.be.Send(&pgproto3.ParameterDescription{ParameterOIDs: oids})
+		sess.w.Send(&pgproto3.ParameterDescription{ParameterOIDs: oids})
 		if _, ok := prep.st.(*selectStmt); ok {
-			sess.be.Send(&pgproto3.RowDescription{Fields: fields})
+			sess.w.Send(&pgproto3.RowDescription{Fields: fields})
 			return nil
 		}
-		sess.be.Send(&pgproto3.NoData{})
+		sess.w.Send(&pgproto3.NoData{})
 		return nil
 	case 'P':
 		p, ok := sess.portals[m.Name]
@@ -530,7 +527,7 @@ func (sess *session) describe(m *pgproto3.Describe) error {
 			if err := sess.portalResult(p); err != nil {
 				return err
 			}
-			sess.be.Send(&pgproto3.RowDescription{Fields: p.res.fields})
+			sess.w.Send(&pgproto3.RowDescription{Fields: p.res.fields})
 			return nil
 		}
 		return sess.describeResult(p.prep.st, p)
@@ -544,14 +541,14 @@ func (sess *session) describeResult(st stmt, p *portal) error {
 	switch st := st.(type) {
 	case *fetchStmt:
 		if c, ok := sess.cursors[st.name]; ok && !st.move {
-			sess.be.Send(&pgproto3.RowDescription{Fields: c.res.fields})
+			sess.w.Send(&pgproto3.RowDescription{Fields: c.res.fields})
 			return nil
 		}
 	case *showStmt:
-		sess.be.Send(&pgproto3.RowDescription{Fields: textFields(st.name)})
+		sess.w.Send(&pgproto3.RowDescription{Fields: textFields(st.name)})
 		return nil
 	}
-	sess.be.Send(&pgproto3.NoData{})
+	sess.w.Send(&pgproto3.NoData{})
 	return nil
 }
 
@@ -580,6 +577,6 @@ func (sess *session) closeObject(m *pgproto3.Close) error {
 	default:
 		return errorf(codeProtocolViolation, "invalid CLOSE message subtype %d", m.ObjectType)
 	}
-	sess.be.Send(&pgproto3.CloseComplete{})
+	sess.w.Send(&pgproto3.CloseComplete{})
 	return nil
 }

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"github.com/sidetrend/sidetrend/sqlwire/livetables"
+	"github.com/sidetrend/sidetrend/sqlwire/wire"
 	"math"
 	"strings"
 	"sync"
@@ -317,7 +318,7 @@ func TestStatementTimeoutCancelsBacktest(t *testing.T) {
 	}
 	select {
 	case cause := <-causes:
-		if !errors.Is(cause, errCancelRequest) {
+		if !errors.Is(cause, wire.ErrCancelRequest) {
 			t.Fatalf("the source's context ended with %v, want the cancel request", cause)
 		}
 	case <-ctx.Done():

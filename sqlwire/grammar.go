@@ -272,13 +272,13 @@ func classify(n *pg.Node) (stmt, error) {
 	case n.GetInsertStmt() != nil, n.GetUpdateStmt() != nil, n.GetDeleteStmt() != nil, n.GetTruncateStmt() != nil,
 		n.GetMergeStmt() != nil, n.GetCopyStmt() != nil:
 		return nil, errorf(codeReadOnly, "cannot write to the sidetrend endpoint: its tables are computed, read-only").
-			withHint("declare the foreign tables with updatable 'false' (sql/foreign.sql does)")
+			WithHint("declare the foreign tables with updatable 'false' (sql/foreign.sql does)")
 	case n.GetExplainStmt() != nil:
 		return nil, notSupported("EXPLAIN is not supported by the sidetrend endpoint").
-			withHint("keep use_remote_estimate 'false' on the foreign server")
+			WithHint("keep use_remote_estimate 'false' on the foreign server")
 	}
 	return nil, notSupported("%s is not supported by the sidetrend endpoint", nodeName(n)).
-		withHint("the endpoint answers the SELECTs, cursors, transactions and SETs that postgres_fdw sends")
+		WithHint("the endpoint answers the SELECTs, cursors, transactions and SETs that postgres_fdw sends")
 }
 
 func transaction(t *pg.TransactionStmt) (stmt, error) {
@@ -546,12 +546,12 @@ func (c *checker) fromItem(n *pg.Node) error {
 		return c.expr(j.Quals)
 	case n.GetRangeSubselect() != nil:
 		return notSupported("subqueries are not supported by the sidetrend endpoint").
-			withHint("run the subquery on the local side, for example with OFFSET 0 in it")
+			WithHint("run the subquery on the local side, for example with OFFSET 0 in it")
 	case n.GetRangeFunction() != nil:
 		return notSupported("functions in FROM are not supported by the sidetrend endpoint")
 	case n.GetRangeTableSample() != nil:
 		return notSupported("TABLESAMPLE is not supported by the sidetrend endpoint").
-			withHint("ANALYZE of the foreign tables is not supported; the endpoint computes rows on demand")
+			WithHint("ANALYZE of the foreign tables is not supported; the endpoint computes rows on demand")
 	}
 	return notSupported("%s in FROM is not supported by the sidetrend endpoint", nodeName(n))
 }
@@ -563,10 +563,10 @@ func endpointTable(rv *pg.RangeVar) (*livetables.Table, error) {
 	switch rv.Schemaname {
 	case "pg_catalog", "information_schema":
 		return nil, notSupported("catalog queries (%s.%s) are not supported here: psql's \\d commands do not work against the sidetrend endpoint", rv.Schemaname, rv.Relname).
-			withHint("%s; describe the foreign tables in the local database instead (\\d sidetrend_live.forecast there)", served)
+			WithHint("%s; describe the foreign tables in the local database instead (\\d sidetrend_live.forecast there)", served)
 	case "", Schema:
 	default:
-		return nil, errorf(codeUndefinedTable, "relation \"%s.%s\" does not exist", rv.Schemaname, rv.Relname).withHint("%s", served)
+		return nil, errorf(codeUndefinedTable, "relation \"%s.%s\" does not exist", rv.Schemaname, rv.Relname).WithHint("%s", served)
 	}
 	if rv.Catalogname != "" {
 		return nil, errorf(codeUndefinedTable, "cross-database references are not implemented: %s.%s.%s", rv.Catalogname, rv.Schemaname, rv.Relname)
@@ -575,13 +575,13 @@ func endpointTable(rv *pg.RangeVar) (*livetables.Table, error) {
 	if !ok {
 		if strings.HasPrefix(rv.Relname, "pg_") {
 			return nil, notSupported("catalog queries (%s) are not supported here: psql's \\d commands do not work against the sidetrend endpoint", rv.Relname).
-				withHint("%s", served)
+				WithHint("%s", served)
 		}
 		name := rv.Relname
 		if rv.Schemaname != "" {
 			name = rv.Schemaname + "." + name
 		}
-		return nil, errorf(codeUndefinedTable, "relation %q does not exist", name).withHint("%s", served)
+		return nil, errorf(codeUndefinedTable, "relation %q does not exist", name).WithHint("%s", served)
 	}
 	return t, nil
 }
@@ -728,7 +728,7 @@ func (c *checker) expr(n *pg.Node) error {
 		return c.funcCall(x.FuncCall)
 	case *pg.Node_SubLink:
 		return notSupported("subqueries are not supported by the sidetrend endpoint").
-			withHint("run the subquery on the local side")
+			WithHint("run the subquery on the local side")
 	}
 	return notSupported("%s is not supported by the sidetrend endpoint", nodeName(n))
 }
@@ -757,11 +757,11 @@ func (c *checker) funcCall(f *pg.FuncCall) error {
 	name, ok := qualifiedName(f.Funcname)
 	if name == "pg_relation_size" {
 		return notSupported("ANALYZE of sidetrend_live tables is not supported: the endpoint computes their rows on demand and has no size to sample").
-			withHint("leave the foreign tables unanalyzed; use_remote_estimate stays off")
+			WithHint("leave the foreign tables unanalyzed; use_remote_estimate stays off")
 	}
 	if !ok || !allowedFunctions[name] {
 		return notSupported("function %s is not supported by the sidetrend endpoint", name).
-			withHint("the endpoint runs built-in aggregates (count, sum, avg, min, max, ...) and immutable scalar functions; compute others on the local side")
+			WithHint("the endpoint runs built-in aggregates (count, sum, avg, min, max, ...) and immutable scalar functions; compute others on the local side")
 	}
 	if f.Over != nil {
 		return notSupported("window functions are not supported by the sidetrend endpoint")

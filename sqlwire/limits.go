@@ -1,13 +1,9 @@
 package sqlwire
 
 import (
-	"context"
-	"errors"
 	"fmt"
-	"io"
-	"net"
+	"github.com/sidetrend/sidetrend/sqlwire/wire"
 	"strconv"
-	"sync"
 	"time"
 )
 
@@ -16,7 +12,9 @@ import (
 // budget of rows and memory, and the errors that say which setting to
 // change. The query handling calls in at a few places (the IN lists and
 // arrays that narrow a parameter column, the table scans, the result it
-// holds); everything else lives here.
+// holds). The limits on clients (connections not logged in, failed
+// logins, message size) are enforced by package wire, which New configures
+// from the same Limits.
 
 // Limits bound the work of one statement and the clients of the endpoint.
 // A zero field takes the default named in its comment.
@@ -55,23 +53,11 @@ const (
 	DefaultMaxInList           = 1000
 	DefaultMaxRows             = 1_000_000
 	DefaultMaxStatementMemory  = 256 << 20
-	DefaultMaxMessageSize      = 1 << 20
-	DefaultMaxUnauthenticated  = 64
-	DefaultAuthFailureDelay    = 250 * time.Millisecond
-	DefaultAuthFailureMaxDelay = 5 * time.Second
+	DefaultMaxMessageSize      = wire.DefaultMaxMessageSize
+	DefaultMaxUnauthenticated  = wire.DefaultMaxUnauthenticated
+	DefaultAuthFailureDelay    = wire.DefaultAuthFailureDelay
+	DefaultAuthFailureMaxDelay = wire.DefaultAuthFailureMaxDelay
 )
-
-// authQuietPeriod is how long an address must go without a failed login
-// for its failures to be forgotten.
-const authQuietPeriod = time.Minute
-
-// maxAuthAddresses bounds the table of addresses with recent failed
-// logins; when it is full the quietest address is forgotten.
-const maxAuthAddresses = 10_000
-
-// clientCheckInterval is how often a running statement checks that its
-// client is still connected.
-const clientCheckInterval = 200 * time.Millisecond
 
 // withDefaults fills the zero fields.
 func (l Limits) withDefaults() Limits {
@@ -124,7 +110,6 @@ const (
 	flagMaxInList        = "--sql-max-in-list (SIDETREND_SQL_MAX_IN_LIST)"
 	flagMaxRows          = "--sql-max-rows (SIDETREND_SQL_MAX_ROWS)"
 	flagMaxMemory        = "--sql-max-statement-memory-mb (SIDETREND_SQL_MAX_STATEMENT_MEMORY_MB)"
-	flagMaxMessage       = "--sql-max-message-kb (SIDETREND_SQL_MAX_MESSAGE_KB)"
 )
 
 // SQLSTATEs of the limits.
@@ -133,24 +118,16 @@ const (
 	codeOutOfMemory  = "53200" // out_of_memory
 )
 
-// errClientGone is the cause of a statement whose client disconnected.
-var errClientGone = errors.New("the client disconnected")
-
 // statementTimeoutError is the error, and the context cause, of a
 // statement that ran past StatementTimeout.
 func (l *Limits) statementTimeoutError() *sqlError {
 	return errorf(codeQueryCanceled, "canceling statement due to statement timeout: the sidetrend endpoint stops statements after %v", l.StatementTimeout).
-		withHint("narrow the query (fewer series, lambdas or horizons), or raise %s", flagStatementTimeout)
+		WithHint("narrow the query (fewer series, lambdas or horizons), or raise %s", flagStatementTimeout)
 }
 
 func (l *Limits) inListError(n int) *sqlError {
 	return errorf(codeProgramLimit, "an IN list or ANY array of %d values is more than the %d the sidetrend endpoint allows", n, l.MaxInList).
-		withHint("split the query into several, or raise %s", flagMaxInList)
-}
-
-func (l *Limits) messageSizeError(n int) *sqlError {
-	return fatalf(codeProgramLimit, "a message of %d bytes is larger than the %d bytes the sidetrend endpoint accepts", n, l.MaxMessageSize).
-		withHint("send shorter statements (fewer IN values), or raise %s", flagMaxMessage)
+		WithHint("split the query into several, or raise %s", flagMaxInList)
 }
 
 func formatCount(n int64) string {
@@ -194,7 +171,7 @@ func (b *budget) Expect(rows, rowBytes int64, what string) error {
 	if rows > b.lim.MaxRows-b.rows {
 		return errorf(codeProgramLimit, "this query would compute %s rows (%s); the sidetrend endpoint computes at most %s rows per statement",
 			formatCount(rows), what, formatCount(b.lim.MaxRows)).
-			withHint("narrow it with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxRows)
+			WithHint("narrow it with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxRows)
 	}
 	if rows > (b.lim.MaxStatementMemory-b.held)/rowBytes {
 		return b.memoryError(rows*rowBytes, "the computed rows ("+what+")")
@@ -219,7 +196,7 @@ func (b *budget) holdBytes(n int64, what string) error {
 func (b *budget) memoryError(bytes int64, what string) *sqlError {
 	return errorf(codeOutOfMemory, "%s would hold about %d MiB; the sidetrend endpoint holds at most %d MiB per statement",
 		what, (bytes+(1<<20)-1)>>20, b.lim.MaxStatementMemory>>20).
-		withHint("narrow the query with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxMemory)
+		WithHint("narrow the query with conditions on tracker, series_key, lambda or horizon, or raise %s", flagMaxMemory)
 }
 
 // checkInList refuses an array of more values than MaxInList.
@@ -228,165 +205,4 @@ func (l *Limits) checkInList(n int) error {
 		return l.inListError(n)
 	}
 	return nil
-}
-
-// admitUnauthenticated counts a new connection as not logged in yet, or
-// closes it at once when MaxUnauthenticated others are still logging in.
-// The refusal is logged at most once a second, with how many there were.
-func (s *Server) admitUnauthenticated(conn net.Conn) bool {
-	if s.unauth.Add(1) <= int64(s.cfg.Limits.MaxUnauthenticated) {
-		return true
-	}
-	s.unauth.Add(-1)
-	refused := s.unauthRefused.Add(1)
-	// Best effort: the client may not read it. A fresh socket's send
-	// buffer is empty, so the write does not wait.
-	conn.SetWriteDeadline(time.Now().Add(100 * time.Millisecond))
-	var buf []byte
-	buf, _ = errorResponse(fatalf(codeTooManyConnections, "sorry, too many clients are logging in: the endpoint allows %d connections that have not authenticated yet",
-		s.cfg.Limits.MaxUnauthenticated)).Encode(buf)
-	conn.Write(buf)
-	conn.Close()
-	now := time.Now().UnixNano()
-	if last := s.lastRefusalLog.Load(); now-last >= int64(time.Second) && s.lastRefusalLog.CompareAndSwap(last, now) {
-		s.log.Warn("sql endpoint refused a connection: too many connections not logged in",
-			"remote", conn.RemoteAddr().String(), "max_unauthenticated", s.cfg.Limits.MaxUnauthenticated, "refused_total", refused)
-	}
-	return false
-}
-
-// authThrottle delays the answer to a failed login, per client address:
-// the first failure waits base, each further one twice as long up to max;
-// an address without failures for authQuietPeriod starts again. The table
-// holds at most size addresses; when it is full, the quietest goes.
-type authThrottle struct {
-	base, max time.Duration
-	size      int
-	now       func() time.Time
-
-	mu    sync.Mutex
-	addrs map[string]*authFailures
-}
-
-type authFailures struct {
-	n    int
-	last time.Time
-}
-
-func newAuthThrottle(base, max time.Duration, size int) *authThrottle {
-	return &authThrottle{base: base, max: max, size: size, now: time.Now, addrs: map[string]*authFailures{}}
-}
-
-// failed records a failed login from addr and returns how long to wait
-// before answering it.
-func (a *authThrottle) failed(addr string) time.Duration {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	now := a.now()
-	f := a.addrs[addr]
-	if f != nil && now.Sub(f.last) >= authQuietPeriod {
-		f.n = 0
-	}
-	if f == nil {
-		if len(a.addrs) >= a.size {
-			a.evict(now)
-		}
-		f = &authFailures{}
-		a.addrs[addr] = f
-	}
-	f.n++
-	f.last = now
-	d := a.base
-	for i := 1; i < f.n && d < a.max; i++ {
-		d *= 2
-	}
-	return min(d, a.max)
-}
-
-// evict drops every quiet address, or the quietest when none is.
-func (a *authThrottle) evict(now time.Time) {
-	var oldest string
-	var oldestAt time.Time
-	for k, f := range a.addrs {
-		if now.Sub(f.last) >= authQuietPeriod {
-			delete(a.addrs, k)
-			continue
-		}
-		if oldest == "" || f.last.Before(oldestAt) {
-			oldest, oldestAt = k, f.last
-		}
-	}
-	if len(a.addrs) >= a.size {
-		delete(a.addrs, oldest)
-	}
-}
-
-// len is the number of addresses remembered.
-func (a *authThrottle) len() int {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	return len(a.addrs)
-}
-
-// hostOf is the address part of a remote address, the key of the login
-// throttle: a client's ports all count as one.
-func hostOf(addr net.Addr) string {
-	if tcp, ok := addr.(*net.TCPAddr); ok {
-		return tcp.IP.String()
-	}
-	host, _, err := net.SplitHostPort(addr.String())
-	if err != nil {
-		return addr.String()
-	}
-	return host
-}
-
-// watchClient checks every clientCheckInterval, while a statement runs,
-// that its client is still connected, and cancels the statement with
-// errClientGone when it is not. stop ends the checks.
-func (sess *session) watchClient(cancel context.CancelCauseFunc) (stop func()) {
-	var (
-		mu      sync.Mutex
-		stopped bool
-		t       *time.Timer
-	)
-	check := func() {
-		gone := peerClosed(sess.conn)
-		mu.Lock()
-		defer mu.Unlock()
-		if stopped {
-			return
-		}
-		if gone {
-			sess.log.Info("sql endpoint client disconnected during a statement: cancelling it")
-			cancel(errClientGone)
-			return
-		}
-		t.Reset(clientCheckInterval)
-	}
-	mu.Lock()
-	t = time.AfterFunc(clientCheckInterval, check)
-	mu.Unlock()
-	return func() {
-		mu.Lock()
-		stopped = true
-		t.Stop()
-		mu.Unlock()
-	}
-}
-
-// maxDrain bounds what is read and dropped of a refused message.
-const maxDrain = 64 << 20
-
-// refuseMessage ends the session after a message longer than
-// MaxMessageSize, without reading it into memory: it sends FATAL 54000,
-// then reads and drops the rest of the message for up to two seconds, so
-// that a client still sending it reads the error rather than a reset
-// connection.
-func (sess *session) refuseMessage(n int) {
-	lim := &sess.srv.cfg.Limits
-	sess.log.Warn("sql endpoint refused a message over the size limit", "bytes", n, "max_bytes", lim.MaxMessageSize)
-	sess.goodbye(lim.messageSizeError(n))
-	sess.conn.SetReadDeadline(time.Now().Add(2 * time.Second))
-	io.CopyN(io.Discard, sess.conn, int64(min(n, maxDrain)))
 }

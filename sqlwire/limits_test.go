@@ -13,6 +13,7 @@ import (
 
 	"github.com/jackc/pgx/v5/pgconn"
 	"github.com/jackc/pgx/v5/pgproto3"
+	"github.com/sidetrend/sidetrend/sqlwire/wire"
 )
 
 // These tests trip each limit of limits.go with a real client (pgconn, or
@@ -278,8 +279,8 @@ func TestClientDisconnectStopsStatement(t *testing.T) {
 	d.Close()
 	select {
 	case cause := <-causes:
-		if !errors.Is(cause, errClientGone) {
-			t.Fatalf("the statement's context ended with %v, want %v", cause, errClientGone)
+		if !errors.Is(cause, wire.ErrClientGone) {
+			t.Fatalf("the statement's context ended with %v, want %v", cause, wire.ErrClientGone)
 		}
 	case <-ctx.Done():
 		t.Fatal("the statement went on computing after its client disconnected")
@@ -404,7 +405,7 @@ func TestFailedLoginDelayIsPerAddress(t *testing.T) {
 		_, err := connectFrom(ctx, srv, "127.0.0.1", "wrong")
 		bad <- err
 	}()
-	waitFor(t, ctx, "the failed login", func() bool { return srv.authFailures.len() == 1 })
+	waitFor(t, ctx, "the failed login", func() bool { return srv.w.FailedLoginAddresses() == 1 })
 	// While 127.0.0.1 waits out its 5 s, 127.0.0.2 logs in.
 	c, err := connectFrom(ctx, srv, "127.0.0.2", testPassword)
 	if err != nil {
@@ -418,41 +419,6 @@ func TestFailedLoginDelayIsPerAddress(t *testing.T) {
 	}
 	if err := <-bad; pgCode(err) != codeInvalidPassword {
 		t.Fatalf("failed login: %v", err)
-	}
-}
-
-func TestAuthThrottleTable(t *testing.T) {
-	t.Parallel()
-	now := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC)
-	a := newAuthThrottle(250*time.Millisecond, 5*time.Second, 3)
-	a.now = func() time.Time { return now }
-	var got []time.Duration
-	for range 7 {
-		got = append(got, a.failed("192.0.2.1"))
-		now = now.Add(time.Second)
-	}
-	// 250 ms doubling: 0.25, 0.5, 1, 2, 4, then the 5 s cap.
-	want := []time.Duration{250, 500, 1000, 2000, 4000, 5000, 5000}
-	for i := range want {
-		if got[i] != want[i]*time.Millisecond {
-			t.Fatalf("delays %v, want %v ms", got, want)
-		}
-	}
-	// A quiet minute forgets the failures.
-	now = now.Add(authQuietPeriod)
-	if d := a.failed("192.0.2.1"); d != 250*time.Millisecond {
-		t.Errorf("after a quiet minute: %v, want 250ms", d)
-	}
-	// The table keeps at most 3 addresses; the quietest goes first.
-	for i := 2; i <= 5; i++ {
-		now = now.Add(time.Second)
-		a.failed(fmt.Sprintf("192.0.2.%d", i))
-	}
-	if a.len() != 3 {
-		t.Fatalf("%d addresses remembered, want 3", a.len())
-	}
-	if _, ok := a.addrs["192.0.2.1"]; ok {
-		t.Error("the quietest address was kept")
 	}
 }
 
@@ -479,19 +445,7 @@ func TestRequireTLS(t *testing.T) {
 	src.setValuesHook(func(c context.Context) error { <-c.Done(); return c.Err() })
 	done := make(chan error, 1)
 	go func() { _, err := execAll(ctx, c, "SELECT count(*) FROM sidetrend_live.backtest"); done <- err }()
-	waitFor(t, ctx, "the statement to start", func() bool {
-		srv.mu.Lock()
-		defer srv.mu.Unlock()
-		for _, s := range srv.sessions {
-			s.mu.Lock()
-			running := s.cancelStmt != nil
-			s.mu.Unlock()
-			if running {
-				return true
-			}
-		}
-		return false
-	})
+	waitFor(t, ctx, "the statement to start", func() bool { return srv.running.Load() > 0 })
 	if err := c.CancelRequest(ctx); err != nil {
 		t.Fatal(err)
 	}

@@ -382,3 +382,23 @@ func TestStopEndsSessionsWithAdminShutdown(t *testing.T) {
 		t.Fatalf("after Stop the idle session got %#v, want FATAL 57P01", msg)
 	}
 }
+
+// TestNonASCIIPassword logs postgres_fdw (libpq, which prepares the
+// password with SASLprep) in with a password outside ASCII whose SASLprep
+// form differs from its bytes: "ﬁ" (U+FB01) maps to "fi" under NFKC and the
+// no-break space U+00A0 to a space (RFC 4013, sections 2.1 and 2.2).
+func TestNonASCIIPassword(t *testing.T) {
+	t.Parallel()
+	ctx := testCtx(t, time.Minute)
+	const password = "crème\u00a0brûlée-\ufb01ve" // made up for the test
+	f := newFixtureConfig(t, newMemSource(t, scenarioSeries()), Config{Credentials: map[string]string{testUser: password}})
+	var n int64
+	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
+		t.Fatalf("series through a non-ASCII password: %d, %v", n, err)
+	}
+	// The same password in another normal form is the same password.
+	f.attach(t, "crème brûlée-five")
+	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
+		t.Fatalf("series through the SASLprep form of the password: %d, %v", n, err)
+	}
+}

@@ -3,30 +3,25 @@
 // any horizon, what-if refits with another forgetting factor and backtests,
 // all computed on demand from the sidecar's stored state.
 //
-// It speaks the subset of the protocol and of SQL that postgres_fdw sends
-// (session SETs, transactions and savepoints, cursors over the extended
-// protocol, the deparsed SELECTs) and authenticates with SCRAM-SHA-256, so
-// non-superusers can use it through a user mapping with a password. Every
+// This package is the query handling: it implements wire.Handler (package
+// sqlwire/wire speaks the protocol and authenticates with SCRAM-SHA-256)
+// for the subset of SQL that postgres_fdw sends (session SETs,
+// transactions and savepoints, cursors over the extended protocol, the
+// deparsed SELECTs) over the tables of sqlwire/livetables. Every
 // pushed-down condition is either applied exactly or refused with an error
 // that names it: Postgres does not check pushed-down conditions again.
 package sqlwire
 
 import (
 	"context"
-	"crypto/rand"
-	"crypto/subtle"
-	"crypto/tls"
-	"encoding/binary"
 	"errors"
-	"fmt"
 	"log/slog"
 	"net"
-	"sync"
 	"sync/atomic"
 	"time"
 
 	"github.com/jackc/pgx/v5/pgxpool"
-	"github.com/xdg-go/scram"
+	"github.com/sidetrend/sidetrend/sqlwire/wire"
 )
 
 // Config configures the endpoint.
@@ -55,84 +50,57 @@ type Config struct {
 }
 
 // DefaultDatabase is the database name clients connect to.
-const DefaultDatabase = "sidetrend"
+const DefaultDatabase = wire.DefaultDatabase
+
+// LoadCredentials reads the endpoint's users and passwords: a file of
+// user:password lines, or, when path is empty, the password of user
+// wire.DefaultUser from wire.PasswordEnv (wire.LoadCredentials).
+func LoadCredentials(path string) (map[string]string, error) { return wire.LoadCredentials(path) }
 
 // Server is the live endpoint.
 type Server struct {
 	cfg Config
 	src Source
 	ev  *evaluator
-	log *slog.Logger
+	w   *wire.Server
 
-	mu       sync.Mutex
-	ln       net.Listener
-	tls      *tls.Config
-	secrets  map[string]scram.StoredCredentials
-	fakeKey  []byte // keys fake SCRAM salts for unknown users
-	sessions map[uint32]*session
-	conns    map[net.Conn]struct{}
-	nextPID  uint32
-	started  bool
-	stopped  bool
-	ctx      context.Context
-	cancel   context.CancelCauseFunc
-	wg       sync.WaitGroup
-	stopOnce sync.Once
-
-	cancels atomic.Int64 // cancel requests that stopped a running statement
-
-	unauth         atomic.Int64 // connections that have not logged in yet
-	unauthRefused  atomic.Int64 // connections closed because of MaxUnauthenticated
-	lastRefusalLog atomic.Int64 // unix nanoseconds of the last refusal logged
-	authFailures   *authThrottle
+	running atomic.Int64 // statements running now
 }
 
 // New returns a server for cfg that computes its tables from src and has
 // db, the sidecar's own database, evaluate the queries over them (any role
 // that can connect will do: the queries read no table). Start listens.
 func New(cfg Config, src Source, db *pgxpool.Pool, log *slog.Logger) *Server {
-	if log == nil {
-		log = slog.New(slog.DiscardHandler)
-	}
-	if cfg.Database == "" {
-		cfg.Database = DefaultDatabase
-	}
-	if cfg.MaxConnections == 0 {
-		cfg.MaxConnections = 200
-	}
-	if cfg.StartupTimeout == 0 {
-		cfg.StartupTimeout = 10 * time.Second
-	}
 	cfg.Limits = cfg.Limits.withDefaults()
-	return &Server{cfg: cfg, src: src, ev: &evaluator{pool: db}, log: log,
-		sessions: map[uint32]*session{}, conns: map[net.Conn]struct{}{},
-		authFailures: newAuthThrottle(cfg.Limits.AuthFailureDelay, cfg.Limits.AuthFailureMaxDelay, maxAuthAddresses)}
+	s := &Server{cfg: cfg, src: src, ev: &evaluator{pool: db}}
+	s.w = wire.New(wire.Config{
+		Listen:              cfg.Listen,
+		TLSCertFile:         cfg.TLSCertFile,
+		TLSKeyFile:          cfg.TLSKeyFile,
+		Credentials:         cfg.Credentials,
+		Database:            cfg.Database,
+		MaxConnections:      cfg.MaxConnections,
+		StartupTimeout:      cfg.StartupTimeout,
+		RequireTLS:          cfg.RequireTLS,
+		MaxMessageSize:      cfg.Limits.MaxMessageSize,
+		MaxUnauthenticated:  cfg.Limits.MaxUnauthenticated,
+		AuthFailureDelay:    cfg.Limits.AuthFailureDelay,
+		AuthFailureMaxDelay: cfg.Limits.AuthFailureMaxDelay,
+	}, handler{s}, log)
+	return s
 }
-
-var errShutdown = errors.New("the sidetrend endpoint is shutting down")
-
-// errCancelRequest is the cause of a statement context cancelled by a
-// client's CancelRequest.
-var errCancelRequest = errors.New("cancel request")
 
 // errStatementTimeout is the cause of a statement that ran past
 // statement_timeout.
 var errStatementTimeout = errors.New("statement timeout")
 
-// Start checks the configuration, derives the SCRAM secrets and starts
-// listening. It fails fast on a bad address, unreadable TLS files or
-// missing credentials. The server runs until Stop or until ctx is done.
+// Start checks the configuration, compiles the parser, derives the SCRAM
+// secrets and starts listening. It fails fast on a bad address, unreadable
+// TLS files, missing credentials, a missing source or database. The server
+// runs until Stop or until ctx is done.
 func (s *Server) Start(ctx context.Context) error {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.started {
-		return errors.New("sqlwire: the server is already started")
-	}
 	if s.src == nil {
 		return errors.New("sqlwire: no source: the endpoint needs the sidecar's state to serve")
-	}
-	if s.cfg.Listen == "" {
-		return errors.New("sqlwire: no listen address: set one such as 127.0.0.1:5488")
 	}
 	if err := s.cfg.Limits.check(); err != nil {
 		return err
@@ -146,239 +114,36 @@ func (s *Server) Start(ctx context.Context) error {
 	// The parser's WebAssembly module compiles once per process (seconds
 	// on two cores): here rather than in the first client's statement.
 	warmGrammar()
-	if len(s.cfg.Credentials) == 0 {
-		return errors.New("sqlwire: no credentials: give at least one user:password, for example through SIDETREND_SQL_PASSWORD")
-	}
-	secrets := map[string]scram.StoredCredentials{}
-	for user, pw := range s.cfg.Credentials {
-		if user == "" {
-			return errors.New("sqlwire: a credential has an empty user name: write user:password")
-		}
-		if pw == "" {
-			return fmt.Errorf("sqlwire: user %q has an empty password: postgres_fdw requires a password for non-superusers", user)
-		}
-		salt := make([]byte, scramSaltLen)
-		if _, err := rand.Read(salt); err != nil {
-			return fmt.Errorf("sqlwire: SCRAM salt: %w", err)
-		}
-		sec, err := newScramSecret(pw, salt, scramIterations)
-		if err != nil {
-			return fmt.Errorf("sqlwire: %w", err)
-		}
-		secrets[user] = sec
-	}
-	s.fakeKey = make([]byte, 32)
-	if _, err := rand.Read(s.fakeKey); err != nil {
-		return fmt.Errorf("sqlwire: %w", err)
-	}
-	switch {
-	case s.cfg.TLSCertFile != "" && s.cfg.TLSKeyFile != "":
-		cert, err := tls.LoadX509KeyPair(s.cfg.TLSCertFile, s.cfg.TLSKeyFile)
-		if err != nil {
-			return fmt.Errorf("sqlwire: load TLS certificate %s and key %s: %w", s.cfg.TLSCertFile, s.cfg.TLSKeyFile, err)
-		}
-		s.tls = &tls.Config{Certificates: []tls.Certificate{cert}, MinVersion: tls.VersionTLS12}
-	case s.cfg.TLSCertFile != "" || s.cfg.TLSKeyFile != "":
-		return errors.New("sqlwire: TLS needs both a certificate file and a key file")
-	}
-	var lc net.ListenConfig
-	ln, err := lc.Listen(ctx, "tcp", s.cfg.Listen)
-	if err != nil {
-		return fmt.Errorf("sqlwire: listen on %s: %w", s.cfg.Listen, err)
-	}
-	var pid [4]byte
-	if _, err := rand.Read(pid[:]); err != nil {
-		ln.Close()
-		return fmt.Errorf("sqlwire: %w", err)
-	}
-	s.nextPID = 1000 + binary.BigEndian.Uint32(pid[:])%1_000_000
-	s.secrets = secrets
-	s.ln = ln
-	s.started = true
-	s.ctx, s.cancel = context.WithCancelCause(context.WithoutCancel(ctx))
-	s.wg.Add(1)
-	go s.acceptLoop()
-	if ctx.Done() != nil {
-		go func() {
-			select {
-			case <-ctx.Done():
-				s.Stop()
-			case <-s.ctx.Done():
-			}
-		}()
-	}
-	s.log.Info("sql endpoint listening", "addr", ln.Addr().String(), "tls", s.tls != nil, "require_tls", s.cfg.RequireTLS)
-	return nil
+	return s.w.Start(ctx)
 }
 
 // Addr is the address the server listens on (nil before Start).
-func (s *Server) Addr() net.Addr {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.ln == nil {
-		return nil
-	}
-	return s.ln.Addr()
-}
+func (s *Server) Addr() net.Addr { return s.w.Addr() }
 
 // Stop stops accepting connections, cancels running statements, ends every
 // session with FATAL 57P01 and waits for them to close. It is idempotent
 // and safe to call before Start.
-func (s *Server) Stop() {
-	s.stopOnce.Do(func() {
-		s.mu.Lock()
-		s.stopped = true
-		if s.ln != nil {
-			s.ln.Close()
-		}
-		if s.cancel != nil {
-			s.cancel(errShutdown)
-		}
-		// Wake sessions blocked reading: they see the stop and say goodbye.
-		now := time.Now()
-		for c := range s.conns {
-			c.SetReadDeadline(now)
-		}
-		s.mu.Unlock()
-		s.wg.Wait()
-		s.log.Info("sql endpoint stopped")
-	})
-}
+func (s *Server) Stop() { s.w.Stop() }
 
 // Unauthenticated is the number of connections that have not logged in
 // yet.
-func (s *Server) Unauthenticated() int { return int(s.unauth.Load()) }
+func (s *Server) Unauthenticated() int { return s.w.Unauthenticated() }
 
 // RefusedUnauthenticated is the number of connections closed at once since
 // Start because MaxUnauthenticated others had not logged in yet.
-func (s *Server) RefusedUnauthenticated() int64 { return s.unauthRefused.Load() }
+func (s *Server) RefusedUnauthenticated() int64 { return s.w.RefusedUnauthenticated() }
 
 // Sessions is the number of authenticated sessions open now.
-func (s *Server) Sessions() int {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	return len(s.sessions)
-}
+func (s *Server) Sessions() int { return s.w.Sessions() }
 
 // CancelsHonored is the number of cancel requests that stopped a running
 // statement since Start.
-func (s *Server) CancelsHonored() int64 { return s.cancels.Load() }
+func (s *Server) CancelsHonored() int64 { return s.w.CancelsHonored() }
 
-func (s *Server) acceptLoop() {
-	defer s.wg.Done()
-	var delay time.Duration
-	for {
-		conn, err := s.ln.Accept()
-		if err != nil {
-			s.mu.Lock()
-			stopped := s.stopped
-			s.mu.Unlock()
-			if stopped || errors.Is(err, net.ErrClosed) {
-				return
-			}
-			// Temporary failures (too many open files): back off, retry.
-			delay = min(max(2*delay, 5*time.Millisecond), time.Second)
-			s.log.Warn("sql endpoint accept failed", "err", err, "retry_in", delay)
-			time.Sleep(delay)
-			continue
-		}
-		delay = 0
-		if !s.admitUnauthenticated(conn) {
-			continue
-		}
-		if !s.track(conn) {
-			s.unauth.Add(-1)
-			conn.Close()
-			continue
-		}
-		s.wg.Add(1)
-		go func() {
-			defer s.wg.Done()
-			defer s.untrack(conn)
-			s.serveConn(conn)
-		}()
-	}
-}
+// handler is the Server's side of wire.Handler.
+type handler struct{ srv *Server }
 
-// track registers a connection so that Stop can wake it; false when the
-// server is stopping.
-func (s *Server) track(c net.Conn) bool {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.stopped {
-		return false
-	}
-	s.conns[c] = struct{}{}
-	return true
-}
-
-func (s *Server) untrack(c net.Conn) {
-	s.mu.Lock()
-	delete(s.conns, c)
-	s.mu.Unlock()
-	c.Close()
-}
-
-// retrack replaces a tracked connection by its TLS wrapper.
-func (s *Server) retrack(old, c net.Conn) bool {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	delete(s.conns, old)
-	if s.stopped {
-		return false
-	}
-	s.conns[c] = struct{}{}
-	return true
-}
-
-// register gives an authenticated session its process id and secret key;
-// false when the server is stopping or full.
-func (s *Server) register(sess *session) (ok bool, full bool) {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.stopped {
-		return false, false
-	}
-	if len(s.sessions) >= s.cfg.MaxConnections {
-		return false, true
-	}
-	for {
-		s.nextPID++
-		if s.nextPID == 0 {
-			s.nextPID = 1000
-		}
-		if _, taken := s.sessions[s.nextPID]; !taken {
-			break
-		}
-	}
-	sess.pid = s.nextPID
-	s.sessions[sess.pid] = sess
-	// The connection must not time out now that startup is over, unless
-	// Stop has already set a deadline (it holds mu while doing so).
-	sess.conn.SetDeadline(time.Time{})
-	return true, false
-}
-
-func (s *Server) unregister(sess *session) {
-	s.mu.Lock()
-	if s.sessions[sess.pid] == sess {
-		delete(s.sessions, sess.pid)
-	}
-	s.mu.Unlock()
-}
-
-// cancelRequest handles a CancelRequest: the matching session's running
-// statement, if any, is cancelled. As in Postgres nothing is sent back.
-func (s *Server) cancelRequest(pid uint32, secret []byte) {
-	s.mu.Lock()
-	sess := s.sessions[pid]
-	s.mu.Unlock()
-	if sess == nil || subtle.ConstantTimeCompare(sess.secret[:], secret) != 1 {
-		s.log.Warn("sql endpoint cancel request for an unknown session", "pid", pid)
-		return
-	}
-	if sess.cancelStatement(errCancelRequest) {
-		s.cancels.Add(1)
-		s.log.Info("sql endpoint statement cancelled by request", "pid", pid, "user", sess.user)
-	}
+func (h handler) Open(c *wire.Conn) wire.Session {
+	return &session{srv: h.srv, w: c, set: newSettings(c.User()), tx: txIdle,
+		cursors: map[string]*cursor{}, prepared: map[string]*prepared{}, portals: map[string]*portal{}}
 }

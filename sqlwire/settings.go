@@ -101,7 +101,7 @@ func (s *settings) set(name, value string, local bool) error {
 	custom := !ok && strings.Contains(name, ".")
 	if !ok && !custom {
 		return errorf(codeUndefinedObject, "unrecognized configuration parameter %q", name).
-			withHint("the endpoint knows %s", knownSettings())
+			WithHint("the endpoint knows %s", knownSettings())
 	}
 	if ok && st.readOnly {
 		return errorf("55P02", "parameter %q cannot be changed", st.name)
@@ -212,7 +212,7 @@ func checkEncoding(v string) (string, error) {
 		return "SQL_ASCII", nil
 	}
 	return "", notSupported("client_encoding %q is not supported: the endpoint speaks UTF8", v).
-		withHint("create the local database with ENCODING 'UTF8', or set client_encoding to UTF8")
+		WithHint("create the local database with ENCODING 'UTF8', or set client_encoding to UTF8")
 }
 
 func checkDateStyle(v string) (string, error) {
@@ -228,7 +228,7 @@ func checkDateStyle(v string) (string, error) {
 			order = "DMY"
 		default:
 			return "", notSupported("DateStyle %q is not supported: the endpoint writes ISO dates", v).
-				withHint("use SET datestyle = ISO")
+				WithHint("use SET datestyle = ISO")
 		}
 	}
 	return "ISO, " + order, nil
@@ -237,7 +237,7 @@ func checkDateStyle(v string) (string, error) {
 func checkTimeZone(v string) (string, error) {
 	if _, err := loadZone(v); err != nil {
 		return "", errorf(codeInvalidParameter, "invalid value for parameter \"TimeZone\": %q", v).
-			withHint("use a zone name such as 'UTC' or 'Europe/Berlin'")
+			WithHint("use a zone name such as 'UTC' or 'Europe/Berlin'")
 	}
 	return strings.TrimSpace(v), nil
 }

@@ -1,10 +1,8 @@
-package sqlwire
+package wire
 
 import (
-	"context"
 	"encoding/base64"
 	"testing"
-	"time"
 
 	"github.com/xdg-go/scram"
 )
@@ -44,25 +42,5 @@ func TestSCRAMVector(t *testing.T) {
 	srv.Step("n,,n=user,r=rOprNGfwEbeRWgbNEkqO")
 	if srv.Step("c=biws,r=rOprNGfwEbeRWgbNEkqO%hvYDpWUa2RaTCAfuxFIlj)hNlF$k0,p=eHzbZapWIk4jUhN+Ute9ytag9zjfMHgsqmmiz7AndVQ="); srv.Valid() {
 		t.Fatal("altered proof accepted")
-	}
-}
-
-// TestNonASCIIPassword logs postgres_fdw (libpq, which prepares the
-// password with SASLprep) in with a password outside ASCII whose SASLprep
-// form differs from its bytes: "ﬁ" (U+FB01) maps to "fi" under NFKC and the
-// no-break space U+00A0 to a space (RFC 4013, sections 2.1 and 2.2).
-func TestNonASCIIPassword(t *testing.T) {
-	t.Parallel()
-	ctx := testCtx(t, time.Minute)
-	const password = "crème\u00a0brûlée-\ufb01ve" // made up for the test
-	f := newFixtureConfig(t, newMemSource(t, scenarioSeries()), Config{Credentials: map[string]string{testUser: password}})
-	var n int64
-	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
-		t.Fatalf("series through a non-ASCII password: %d, %v", n, err)
-	}
-	// The same password in another normal form is the same password.
-	f.attach(t, "crème brûlée-five")
-	if err := f.analyst(t, ctx).QueryRow(context.Background(), "SELECT count(*) FROM sidetrend_live.series").Scan(&n); err != nil || n != 5 {
-		t.Fatalf("series through the SASLprep form of the password: %d, %v", n, err)
 	}
 }

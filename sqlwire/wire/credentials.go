@@ -1,4 +1,4 @@
-package sqlwire
+package wire
 
 import (
 	"fmt"

@@ -1,6 +1,6 @@
 //go:build !linux
 
-package sqlwire
+package wire
 
 import "net"
 
